@@ -1,0 +1,165 @@
+"""Command line: one subcommand per stage, so every stage runs by hand as well as from Snakemake.
+
+    allolaw prepare --config config/config.yaml --dataset island_metabolism
+    allolaw fit     --config config/config.yaml --dataset island_metabolism --model taxa --threads 2
+    allolaw check   --config config/config.yaml --dataset island_metabolism --model taxa
+    allolaw compare --config config/config.yaml --dataset island_metabolism
+    allolaw report  --config config/config.yaml --dataset island_metabolism   (or --index)
+    allolaw demo-data --out data/demo
+
+A problem the user can fix exits with status 2 and one message naming file, line, column and
+value; nothing else prints a traceback unless ``--debug`` is given.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import time
+from collections.abc import Sequence
+
+from allolaw import __version__
+from allolaw.errors import UserError
+
+__all__ = ["main"]
+
+log = logging.getLogger("allolaw")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit status."""
+    parser = _build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(
+        level=logging.DEBUG if args.debug else logging.INFO,
+        format="%(asctime)s allolaw %(levelname)s %(message)s",
+        datefmt="%H:%M:%S",
+        stream=sys.stderr,
+    )
+    start = time.perf_counter()
+    try:
+        args.func(args)
+    except UserError as err:
+        if args.debug:
+            raise
+        print(f"allolaw {args.command}: error: {err}", file=sys.stderr)
+        return 2
+    log.info("%s done in %.1f s", args.command, time.perf_counter() - start)
+    return 0
+
+
+def _build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="allolaw",
+        description="Bayesian scaling laws for multi-species tables, one stage at a time.",
+    )
+    parser.add_argument("--version", action="version", version=f"allolaw {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="STAGE")
+
+    def stage(name: str, help_text: str, *, model: bool = False, dataset: bool = True):
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        p.add_argument("--config", default="config/config.yaml", help="batch config YAML")
+        p.add_argument(
+            "--set",
+            dest="overrides",
+            action="append",
+            default=[],
+            metavar="KEY=VALUE",
+            help="override a config key, e.g. --set sampler.draws=200 (repeatable)",
+        )
+        if dataset:
+            p.add_argument("--dataset", required=True, help="dataset name from the config")
+        if model:
+            p.add_argument("--model", required=True, help="model spec name (models/<name>.yaml)")
+        return p
+
+    p = stage("prepare", "Read, convert, validate and aggregate a dataset; write the ledger.")
+    p.set_defaults(func=_run_prepare)
+
+    p = stage("fit", "Fit one model spec to one prepared dataset.", model=True)
+    p.add_argument("--threads", type=int, default=1, help="cores for this job (default 1)")
+    p.set_defaults(func=_run_fit)
+
+    p = stage("check", "Diagnose one fit: convergence, sampler health, predictive checks.",
+              model=True)
+    p.add_argument("--threads", type=int, default=1, help="cores for a refit (default 1)")
+    p.set_defaults(func=_run_check)
+
+    p = stage("compare", "Compare a dataset's models; weigh the named exponents.")
+    p.set_defaults(func=_run_compare)
+
+    p = stage("report", "Write the HTML audit report of a dataset, or the batch index.",
+              dataset=False)
+    group = p.add_mutually_exclusive_group(required=True)
+    group.add_argument("--dataset", help="dataset name from the config")
+    group.add_argument("--index", action="store_true", help="write reports/index.html")
+    p.set_defaults(func=_run_report)
+
+    p = sub.add_parser("demo-data", help="Write the invented demo datasets (seeded).",
+                       description="Write the invented demo datasets (seeded).")
+    p.add_argument("--out", default="data/demo", help="output folder (default data/demo)")
+    p.add_argument("--seed", type=int, default=None, help="seed (default: the demo's own)")
+    p.set_defaults(func=_run_demo)
+    return parser
+
+
+def _config(args: argparse.Namespace) -> dict:
+    from allolaw.config import load_config
+
+    return load_config(args.config, args.overrides)
+
+
+def _run_prepare(args: argparse.Namespace) -> None:
+    from allolaw.intake import prepare_dataset
+
+    summary = prepare_dataset(_config(args), args.dataset)
+    print(summary)
+
+
+def _run_fit(args: argparse.Namespace) -> None:
+    from allolaw.runtime import configure_job
+
+    configure_job(args.threads)
+    from allolaw.fitting import fit_dataset_model
+
+    fit_dataset_model(_config(args), args.dataset, args.model, threads=args.threads)
+
+
+def _run_check(args: argparse.Namespace) -> None:
+    from allolaw.runtime import configure_job
+
+    configure_job(args.threads)
+    from allolaw.diagnostics import check_dataset_model
+
+    result = check_dataset_model(_config(args), args.dataset, args.model, threads=args.threads)
+    print(f"{args.dataset}/{args.model}: {result}")
+
+
+def _run_compare(args: argparse.Namespace) -> None:
+    from allolaw.runtime import configure_job
+
+    configure_job(1)
+    from allolaw.comparison import compare_dataset
+
+    compare_dataset(_config(args), args.dataset)
+
+
+def _run_report(args: argparse.Namespace) -> None:
+    from allolaw.report import render_dataset_report, render_index
+
+    config = _config(args)
+    path = render_index(config) if args.index else render_dataset_report(config, args.dataset)
+    print(path)
+
+
+def _run_demo(args: argparse.Namespace) -> None:
+    from allolaw.demo import write_demo_data
+
+    for path in write_demo_data(args.out, seed=args.seed):
+        print(path)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

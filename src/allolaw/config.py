@@ -1,0 +1,137 @@
+"""Load and validate the batch configuration.
+
+The schema (``schemas/config.schema.yaml``, linked as ``config/schema.yaml``) is the single
+description of every key; defaults come from it, so the code never repeats them.
+"""
+
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import jsonschema
+import yaml
+
+from allolaw.errors import UserError
+
+__all__ = [
+    "config_sha256",
+    "dataset_config",
+    "hypotheses_config",
+    "load_config",
+    "load_schema",
+    "validate_config",
+]
+
+
+def load_schema(name: str = "config") -> dict[str, Any]:
+    """Return the JSON schema ``schemas/<name>.schema.yaml`` shipped with the package."""
+    text = resources.files("allolaw").joinpath(f"schemas/{name}.schema.yaml").read_text("utf-8")
+    return yaml.safe_load(text)
+
+
+def load_config(path: str | Path, overrides: list[str] | None = None) -> dict[str, Any]:
+    """Read a YAML config, apply ``key.sub=value`` overrides, validate and fill defaults.
+
+    Raises
+    ------
+    UserError
+        If the file is missing, is not YAML, or breaks the schema; the message names the key.
+    """
+    path = Path(path)
+    if not path.is_file():
+        msg = f"config file not found: {path}"
+        raise UserError(msg)
+    try:
+        config = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as err:
+        msg = f"{path}: not valid YAML: {err}"
+        raise UserError(msg) from err
+    for item in overrides or []:
+        _apply_override(config, item)
+    return validate_config(config, source=str(path))
+
+
+def validate_config(config: Any, *, source: str = "config") -> dict[str, Any]:
+    """Validate ``config`` against the schema and return a copy with defaults filled in."""
+    schema = load_schema("config")
+    validator = jsonschema.Draft202012Validator(schema)
+    errors = sorted(validator.iter_errors(config), key=lambda e: list(e.absolute_path))
+    if errors:
+        err = errors[0]
+        key = ".".join(str(p) for p in err.absolute_path) or "(top level)"
+        msg = f"{source}: key '{key}': {err.message}"
+        if len(errors) > 1:
+            msg += f" (and {len(errors) - 1} more problem(s))"
+        raise UserError(msg)
+    filled = copy.deepcopy(config)
+    _fill_defaults(filled, schema, schema)
+    return filled
+
+
+def dataset_config(config: dict[str, Any], dataset: str) -> dict[str, Any]:
+    """Return the config block of one dataset, or a clear error listing the known names."""
+    try:
+        return config["datasets"][dataset]
+    except KeyError:
+        known = ", ".join(sorted(config["datasets"]))
+        msg = f"dataset '{dataset}' is not in the config (known: {known})"
+        raise UserError(msg) from None
+
+
+def hypotheses_config(config: dict[str, Any], dataset: str) -> dict[str, Any]:
+    """Batch-level hypotheses, overridden key by key by the dataset's own block."""
+    merged = dict(config.get("hypotheses", {}))
+    merged.update(dataset_config(config, dataset).get("hypotheses", {}))
+    return merged
+
+
+def config_sha256(config: dict[str, Any]) -> str:
+    """Hash of the validated config (stable key order)."""
+    return hashlib.sha256(json.dumps(config, sort_keys=True).encode()).hexdigest()
+
+
+def _apply_override(config: dict[str, Any], item: str) -> None:
+    if "=" not in item:
+        msg = f"override '{item}' is not of the form key.sub=value"
+        raise UserError(msg)
+    key, value = item.split("=", 1)
+    node = config
+    parts = key.split(".")
+    for part in parts[:-1]:
+        node = node.setdefault(part, {})
+    node[parts[-1]] = yaml.safe_load(value)
+
+
+def _fill_defaults(node: Any, schema: dict[str, Any], root: dict[str, Any]) -> None:
+    schema = _resolve(schema, root)
+    if not isinstance(node, dict):
+        if isinstance(node, list) and "items" in schema:
+            for item in node:
+                _fill_defaults(item, schema["items"], root)
+        return
+    for key, sub in schema.get("properties", {}).items():
+        sub = _resolve(sub, root)
+        if key not in node and "default" in sub:
+            node[key] = copy.deepcopy(sub["default"])
+        if key in node:
+            _fill_defaults(node[key], sub, root)
+    extra = schema.get("additionalProperties")
+    if isinstance(extra, dict):
+        for key, value in node.items():
+            if key not in schema.get("properties", {}):
+                _fill_defaults(value, extra, root)
+
+
+def _resolve(schema: dict[str, Any], root: dict[str, Any]) -> dict[str, Any]:
+    while "$ref" in schema:
+        ref = schema["$ref"].removeprefix("#/").split("/")
+        target: Any = root
+        for part in ref:
+            target = target[part]
+        schema = target
+    return schema

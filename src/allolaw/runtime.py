@@ -1,0 +1,62 @@
+"""Threads and compile caches for one job.
+
+Call :func:`configure_job` before importing pytensor, JAX or PyMC: it fixes the thread count of
+every math library to the job's share of cores (no oversubscription) and puts the compile
+caches on local disk, where they stay warm across the jobs of a batch.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+__all__ = ["cache_root", "configure_job"]
+
+_THREAD_VARS = (
+    "OMP_NUM_THREADS",
+    "MKL_NUM_THREADS",
+    "OPENBLAS_NUM_THREADS",
+    "NUMBA_NUM_THREADS",
+    "VECLIB_MAXIMUM_THREADS",
+    "NUMEXPR_NUM_THREADS",
+)
+
+
+def cache_root() -> Path:
+    """Local-disk cache folder: ``$ALLOLAW_CACHE_DIR``, else ``.cache/allolaw`` in the cwd."""
+    return Path(os.environ.get("ALLOLAW_CACHE_DIR", Path.cwd() / ".cache" / "allolaw"))
+
+
+def configure_job(threads: int) -> dict[str, str]:
+    """Set thread variables and compile-cache locations for this process.
+
+    Parameters
+    ----------
+    threads
+        Cores given to the job (Snakemake's ``{threads}``).
+
+    Returns
+    -------
+    dict
+        The environment variables that were set.
+    """
+    threads = max(1, int(threads))
+    root = cache_root()
+    pytensor_dir = root / "pytensor"
+    jax_dir = root / "jax"
+    pytensor_dir.mkdir(parents=True, exist_ok=True)
+    jax_dir.mkdir(parents=True, exist_ok=True)
+    env = {var: str(threads) for var in _THREAD_VARS}
+    flags = os.environ.get("PYTENSOR_FLAGS", "")
+    if "base_compiledir" not in flags:
+        flags = ",".join(f for f in (flags, f"base_compiledir={pytensor_dir}") if f)
+    env["PYTENSOR_FLAGS"] = flags
+    env["JAX_COMPILATION_CACHE_DIR"] = str(jax_dir)
+    env["JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS"] = "0"
+    env["JAX_PLATFORMS"] = "cpu"
+    env["XLA_FLAGS"] = (
+        f"--xla_force_host_platform_device_count={threads} "
+        "--xla_cpu_multi_thread_eigen=false intra_op_parallelism_threads=1"
+    )
+    os.environ.update(env)
+    return env
