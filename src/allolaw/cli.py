@@ -60,7 +60,13 @@ def _build_parser() -> argparse.ArgumentParser:
 
     def stage(name: str, help_text: str, *, model: bool = False, dataset: bool = True):
         p = sub.add_parser(name, help=help_text, description=help_text)
-        p.add_argument("--config", default="config/config.yaml", help="batch config YAML")
+        p.add_argument(
+            "--config",
+            dest="configs",
+            action="append",
+            metavar="FILE",
+            help="batch config YAML (repeatable; later files win; default config/config.yaml)",
+        )
         p.add_argument(
             "--set",
             dest="overrides",
@@ -108,7 +114,7 @@ def _build_parser() -> argparse.ArgumentParser:
 def _config(args: argparse.Namespace) -> dict:
     from allolaw.config import load_config
 
-    return load_config(args.config, args.overrides)
+    return load_config(args.configs or ["config/config.yaml"], args.overrides)
 
 
 def _run_prepare(args: argparse.Namespace) -> None:

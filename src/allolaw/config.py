@@ -34,26 +34,38 @@ def load_schema(name: str = "config") -> dict[str, Any]:
     return yaml.safe_load(text)
 
 
-def load_config(path: str | Path, overrides: list[str] | None = None) -> dict[str, Any]:
-    """Read a YAML config, apply ``key.sub=value`` overrides, validate and fill defaults.
+def load_config(
+    paths: str | Path | list[str | Path], overrides: list[str] | None = None
+) -> dict[str, Any]:
+    """Read YAML config file(s), apply ``key.sub=value`` overrides, validate, fill defaults.
+
+    Later files and overrides are merged into earlier ones key by key (nested mappings are
+    merged, everything else replaced), as Snakemake merges ``--configfile`` and ``--config``.
 
     Raises
     ------
     UserError
-        If the file is missing, is not YAML, or breaks the schema; the message names the key.
+        If a file is missing, is not YAML, or breaks the schema; the message names the key.
     """
-    path = Path(path)
-    if not path.is_file():
-        msg = f"config file not found: {path}"
-        raise UserError(msg)
-    try:
-        config = yaml.safe_load(path.read_text(encoding="utf-8"))
-    except yaml.YAMLError as err:
-        msg = f"{path}: not valid YAML: {err}"
-        raise UserError(msg) from err
+    if isinstance(paths, str | Path):
+        paths = [paths]
+    config: dict[str, Any] = {}
+    for path in map(Path, paths):
+        if not path.is_file():
+            msg = f"config file not found: {path}"
+            raise UserError(msg)
+        try:
+            loaded = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+        except yaml.YAMLError as err:
+            msg = f"{path}: not valid YAML: {err}"
+            raise UserError(msg) from err
+        if not isinstance(loaded, dict):
+            msg = f"{path}: a config file must be a mapping of keys to values"
+            raise UserError(msg)
+        _merge(config, loaded)
     for item in overrides or []:
         _apply_override(config, item)
-    return validate_config(config, source=str(path))
+    return validate_config(config, source=" + ".join(str(p) for p in paths))
 
 
 def validate_config(config: Any, *, source: str = "config") -> dict[str, Any]:
@@ -100,11 +112,26 @@ def _apply_override(config: dict[str, Any], item: str) -> None:
         msg = f"override '{item}' is not of the form key.sub=value"
         raise UserError(msg)
     key, value = item.split("=", 1)
-    node = config
+    try:
+        parsed = yaml.safe_load(value)
+    except yaml.YAMLError as err:
+        msg = f"override '{item}': value is not valid YAML: {err}"
+        raise UserError(msg) from err
+    update: dict[str, Any] = {}
+    node = update
     parts = key.split(".")
     for part in parts[:-1]:
         node = node.setdefault(part, {})
-    node[parts[-1]] = yaml.safe_load(value)
+    node[parts[-1]] = parsed
+    _merge(config, update)
+
+
+def _merge(base: dict[str, Any], update: dict[str, Any]) -> None:
+    for key, value in update.items():
+        if isinstance(value, dict) and isinstance(base.get(key), dict):
+            _merge(base[key], value)
+        else:
+            base[key] = copy.deepcopy(value)
 
 
 def _fill_defaults(node: Any, schema: dict[str, Any], root: dict[str, Any]) -> None:

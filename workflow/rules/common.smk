@@ -1,0 +1,51 @@
+# Validation and input functions only; all logic lives in the allolaw package.
+import json
+import shlex
+import sys
+
+from allolaw.config import validate_config
+
+# The package fills defaults from the same schema Snakemake validated against.
+CONFIG = validate_config(dict(config), source="snakemake config")
+RESULTS = CONFIG["results_dir"]
+REPORTS = CONFIG["reports_dir"]
+LOGS = "logs"
+DATASETS = sorted(CONFIG["datasets"])
+
+# The interpreter running Snakemake runs the CLI too, so no environment needs activating.
+ALLOLAW = f"{shlex.quote(sys.executable)} -m allolaw"
+# Every CLI call reads the same base file as Snakemake plus whatever came from the command line
+# (--configfile / --config), passed as key overrides, so both always see one configuration.
+_BASE = [] if workflow.config_settings.replace_workflow_config else ["--config config/config.yaml"]
+_OVERRIDES = [
+    f"--set {shlex.quote(f'{key}={json.dumps(value)}')}"
+    for key, value in workflow.config_settings.overwrite_config.items()
+]
+CLI_OPTS = " ".join([*_BASE, *_OVERRIDES])
+
+
+wildcard_constraints:
+    dataset="|".join(DATASETS),
+    model="[A-Za-z0-9_-]+",
+
+
+def dataset_sources(wildcards):
+    return [s["file"] for s in CONFIG["datasets"][wildcards.dataset]["sources"]]
+
+
+def model_spec(wildcards):
+    return f"{CONFIG['models_dir']}/{wildcards.model}.yaml"
+
+
+def dataset_posteriors(wildcards):
+    models = CONFIG["datasets"][wildcards.dataset]["models"]
+    return [f"{RESULTS}/{wildcards.dataset}/{m}/posterior.nc" for m in models]
+
+
+def dataset_checks(wildcards):
+    models = CONFIG["datasets"][wildcards.dataset]["models"]
+    return [f"{RESULTS}/{wildcards.dataset}/checks/{m}.json" for m in models]
+
+
+def all_reports():
+    return [f"{REPORTS}/{d}.html" for d in DATASETS] + [f"{REPORTS}/index.html"]
