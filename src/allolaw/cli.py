@@ -112,50 +112,57 @@ def _build_parser() -> argparse.ArgumentParser:
 
 
 def _config(args: argparse.Namespace) -> dict:
-    from allolaw.config import load_config
+    from allolaw.config import dataset_config, load_config
 
-    return load_config(args.configs or ["config/config.yaml"], args.overrides)
+    config = load_config(args.configs or ["config/config.yaml"], args.overrides)
+    if getattr(args, "dataset", None):
+        dataset_config(config, args.dataset)  # an unknown name stops here, listing the known
+    return config
 
 
 def _run_prepare(args: argparse.Namespace) -> None:
+    config = _config(args)
     from allolaw.intake import prepare_dataset
 
-    summary = prepare_dataset(_config(args), args.dataset)
+    summary = prepare_dataset(config, args.dataset)
     print(summary)
 
 
 def _run_fit(args: argparse.Namespace) -> None:
     from allolaw.runtime import configure_job
 
+    config = _config(args)
     configure_job(args.threads)
     from allolaw.fitting import fit_dataset_model
 
-    fit_dataset_model(_config(args), args.dataset, args.model, threads=args.threads)
+    fit_dataset_model(config, args.dataset, args.model, threads=args.threads)
 
 
 def _run_check(args: argparse.Namespace) -> None:
     from allolaw.runtime import configure_job
 
+    config = _config(args)
     configure_job(args.threads)
     from allolaw.diagnostics import check_dataset_model
 
-    result = check_dataset_model(_config(args), args.dataset, args.model, threads=args.threads)
+    result = check_dataset_model(config, args.dataset, args.model, threads=args.threads)
     print(f"{args.dataset}/{args.model}: {result}")
 
 
 def _run_compare(args: argparse.Namespace) -> None:
     from allolaw.runtime import configure_job
 
+    config = _config(args)
     configure_job(1)
     from allolaw.comparison import compare_dataset
 
-    compare_dataset(_config(args), args.dataset)
+    compare_dataset(config, args.dataset)
 
 
 def _run_report(args: argparse.Namespace) -> None:
+    config = _config(args)
     from allolaw.report import render_dataset_report, render_index
 
-    config = _config(args)
     path = render_index(config) if args.index else render_dataset_report(config, args.dataset)
     print(path)
 
