@@ -1,0 +1,349 @@
+"""Model specs: plain-word YAML files in ``models/``, validated against a JSON schema.
+
+A spec names the terms of one model variant (taxon levels, measurement error, curvature,
+breakpoint, residuals, covariates, priors). The schema ``schemas/model.schema.yaml`` describes
+every key with its default; :func:`load_spec` validates a file, fills the defaults and returns
+a :class:`ModelSpec`. :func:`describe_spec` turns a spec into a paragraph for the report.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import jsonschema
+import yaml
+
+from allolaw.errors import UserError
+
+__all__ = ["ModelSpec", "describe_spec", "load_spec", "parse_spec", "spec_schema"]
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """A validated model spec with every default filled in.
+
+    Attributes mirror the keys of ``schemas/model.schema.yaml``; ``priors["exponent"]`` is
+    ``{"mean": m, "sd": s}`` (a normal prior).
+    """
+
+    name: str
+    description: str
+    taxa: dict[str, Any]
+    size_error: str
+    trait_error: str
+    curvature: str
+    breakpoint: str
+    hinge_width: float
+    residuals: str
+    covariates: list[dict[str, Any]]
+    priors: dict[str, dict[str, Any]]
+    source: str = field(default="", compare=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Return the spec as plain data (the keys of the YAML file plus ``name``)."""
+        return {
+            "name": self.name,
+            "description": self.description,
+            "taxa": copy.deepcopy(self.taxa),
+            "size_error": self.size_error,
+            "trait_error": self.trait_error,
+            "curvature": self.curvature,
+            "breakpoint": self.breakpoint,
+            "hinge_width": self.hinge_width,
+            "residuals": self.residuals,
+            "covariates": copy.deepcopy(self.covariates),
+            "priors": copy.deepcopy(self.priors),
+        }
+
+    def to_json(self) -> str:
+        """The spec as a JSON string (stored in the InferenceData attributes)."""
+        return json.dumps(self.to_dict(), sort_keys=True)
+
+    @property
+    def has_size_error(self) -> bool:
+        """True when the true log size of each species is a latent parameter."""
+        return self.size_error != "none"
+
+
+def load_spec(models_dir: str | Path, name: str) -> ModelSpec:
+    """Read, validate and complete ``<models_dir>/<name>.yaml``.
+
+    Parameters
+    ----------
+    models_dir
+        Folder of model specs.
+    name
+        Spec name (file name without ``.yaml``).
+
+    Raises
+    ------
+    UserError
+        If the file is missing or not YAML, or a key is unknown or has a bad value; the
+        message names the file, the key and the value.
+    """
+    path = Path(models_dir) / f"{name}.yaml"
+    if not path.is_file():
+        known = sorted(p.stem for p in Path(models_dir).glob("*.yaml"))
+        msg = f"model spec not found: {path} (known specs: {', '.join(known) or 'none'})"
+        raise UserError(msg)
+    try:
+        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as err:
+        msg = f"{path}: not valid YAML: {err}"
+        raise UserError(msg) from err
+    return parse_spec(raw if raw is not None else {}, name=name, source=str(path))
+
+
+def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:
+    """Validate a spec given as plain data and return it with defaults filled in.
+
+    Parameters
+    ----------
+    raw
+        The mapping read from YAML.
+    name
+        Spec name.
+    source
+        Where it came from (used in error messages).
+    """
+    schema = spec_schema()
+    validator = jsonschema.Draft202012Validator(schema)
+    errors = sorted(validator.iter_errors(raw), key=lambda e: list(e.absolute_path))
+    if errors:
+        raise UserError(_format_schema_error(errors, source))
+    spec = copy.deepcopy(raw)
+    _fill_defaults(spec, schema, schema)
+    _check_consistency(spec, source)
+    intercept = spec["priors"]["intercept"]
+    intercept.setdefault("mean", "auto")
+    for cov in spec["covariates"]:
+        cov["column"] = cov["column"].removeprefix("cov_")
+    return ModelSpec(
+        name=name,
+        description=spec["description"],
+        taxa=spec["taxa"],
+        size_error=spec["size_error"],
+        trait_error=spec["trait_error"],
+        curvature=spec["curvature"],
+        breakpoint=spec["breakpoint"],
+        hinge_width=float(spec["hinge_width"]),
+        residuals=spec["residuals"],
+        covariates=spec["covariates"],
+        priors=spec["priors"],
+        source=source,
+    )
+
+
+def spec_schema() -> dict[str, Any]:
+    """Return the JSON schema of model specs shipped with the package."""
+    text = resources.files("allolaw").joinpath("schemas/model.schema.yaml").read_text("utf-8")
+    return yaml.safe_load(text)
+
+
+def describe_spec(spec: ModelSpec) -> str:
+    """Describe the model in one plain-words paragraph (for the report's methods section).
+
+    Parameters
+    ----------
+    spec
+        A validated spec.
+
+    Returns
+    -------
+    str
+        A paragraph naming every term and prior of the model.
+    """
+    pri = spec.priors
+    sentences = [
+        "The natural log of the trait is modelled as an intercept plus an exponent times the "
+        "natural log of size, centred at the reference size, so that the intercept is the log "
+        "trait of a species of reference size."
+    ]
+    levels = spec.taxa["levels"]
+    vary = spec.taxa["vary"]
+    if levels != "none" and vary:
+        which = {
+            "all": "every taxon level of the dataset",
+            "innermost": "the innermost taxon level",
+        }.get(levels) if isinstance(levels, str) else "the levels " + ", ".join(levels)
+        terms = " and ".join("its own " + v for v in vary)
+        sentences.append(
+            f"At {which}, each taxon has {terms}: a normal deviation from its parent taxon "
+            "(or from the population law at the outermost level), with an SD estimated from "
+            "the data (partial pooling)."
+        )
+    else:
+        sentences.append("All species share one law (no taxon terms).")
+    if spec.curvature == "shared":
+        sentences.append("A quadratic term in centred log size, shared by all taxa, bends the law.")
+    elif spec.curvature == "shared_and_taxa":
+        sentences.append(
+            "A quadratic term in centred log size bends the law; each taxon has its own "
+            "curvature, deviating from the shared one."
+        )
+    if spec.breakpoint == "one":
+        sentences.append(
+            "The exponent changes at one break in size through a smooth hinge of width "
+            f"{spec.hinge_width:g} on the log scale; the break location has a uniform prior "
+            f"between the {pri['break_range']['lower_quantile']:.0%} and "
+            f"{pri['break_range']['upper_quantile']:.0%} quantiles of observed log size."
+        )
+    sentences.append(_describe_errors(spec))
+    for cov in spec.covariates:
+        if cov["transform"] == "boltzmann":
+            sentences.append(
+                f"Temperature ({cov['column']}) enters as centred inverse temperature 1/(kT) "
+                "with k = 8.617e-5 eV/K; its coefficient is minus an activation energy in eV "
+                "(Gillooly et al. 2001)."
+            )
+        else:
+            sentences.append(f"The centred covariate {cov['column']} enters additively.")
+    if spec.residuals == "student_t":
+        sentences.append(
+            "Residuals follow a Student-t distribution with estimated degrees of freedom "
+            f"(prior gamma({pri['nu']['alpha']:g}, {pri['nu']['beta']:g})), so single outlying "
+            "species pull the law less than under normal residuals."
+        )
+    else:
+        sentences.append("Residuals are normal on the log scale.")
+    sigma = pri["sigma"]
+    sigma_text = (
+        f"the residual SD is fixed at {sigma['fixed']:g}"
+        if "fixed" in sigma
+        else f"the residual SD half-normal({sigma['sd']:g})"
+    )
+    intercept_mean = pri["intercept"].get("mean", "auto")
+    intercept_text = (
+        "centred at the median log trait"
+        if intercept_mean == "auto"
+        else f"with mean {intercept_mean:g}"
+    )
+    sentences.append(
+        f"Priors: exponent normal({pri['exponent']['mean']:g}, {pri['exponent']['sd']:g}); "
+        f"intercept normal with SD {pri['intercept']['sd']:g}, {intercept_text}; {sigma_text}."
+    )
+    return " ".join(sentences)
+
+
+def _describe_errors(spec: ModelSpec) -> str:
+    if spec.size_error == "ratio":
+        ratio = spec.priors["error_ratio"]
+        fixed = "fixed" if ratio["log_sd"] == 0 else f"log-normal with log-SD {ratio['log_sd']:g}"
+        return (
+            "Both axes carry measurement error with a known ratio of trait to size error "
+            f"variances (median {ratio['value']:g}, {fixed}); the true log size of each species "
+            "is a latent parameter with a normal population prior (a Bayesian Deming regression)."
+        )
+    parts = []
+    if spec.size_error in ("known", "replicates"):
+        origin = "given per species" if spec.size_error == "known" else "from replicates"
+        parts.append(
+            f"Size is measured with error (SD {origin}); the true log size of each species is a "
+            "latent parameter with a normal population prior, so the exponent is not diluted."
+        )
+    if spec.trait_error in ("known", "replicates"):
+        origin = "given per species" if spec.trait_error == "known" else "from replicates"
+        parts.append(
+            f"The trait's measurement-error variance ({origin}) is added to the residual variance."
+        )
+    return " ".join(parts) or "Size and trait are taken as measured without error."
+
+
+def _format_schema_error(errors: list[jsonschema.ValidationError], source: str) -> str:
+    err = errors[0]
+    path = [str(p) for p in err.absolute_path]
+    if err.validator == "additionalProperties":
+        known = sorted(err.schema.get("properties", {}))
+        extra = sorted(set(err.instance) - set(known)) if isinstance(err.instance, dict) else []
+        key = ".".join([*path, extra[0]]) if extra else ".".join(path) or "(top level)"
+        msg = f"{source}: unknown key '{key}' (allowed here: {', '.join(known)})"
+    else:
+        key = ".".join(path) or "(top level)"
+        value = err.instance
+        if err.validator == "oneOf" and isinstance(err.schema, dict):
+            choices = [s.get("enum") for s in err.schema["oneOf"] if "enum" in s]
+            allowed = ", ".join(str(c) for group in choices for c in group)
+            detail = f"expected one of {allowed} or a list of level names"
+        else:
+            detail = err.message
+        msg = f"{source}: key '{key}': bad value {value!r}: {detail}"
+    if len(errors) > 1:
+        msg += f" (and {len(errors) - 1} more problem(s))"
+    return msg
+
+
+def _check_consistency(spec: dict[str, Any], source: str) -> None:
+    size, trait = spec["size_error"], spec["trait_error"]
+    if (size == "ratio") != (trait == "ratio"):
+        key = "size_error" if size != "ratio" else "trait_error"
+        msg = (
+            f"{source}: key '{key}': bad value {spec[key]!r}: the error-ratio setting needs "
+            "both size_error and trait_error set to 'ratio'"
+        )
+        raise UserError(msg)
+    if spec["curvature"] != "none" and spec["breakpoint"] != "none":
+        msg = (
+            f"{source}: key 'breakpoint': bad value {spec['breakpoint']!r}: a breakpoint "
+            "cannot be combined with curvature (choose one way for the law to bend)"
+        )
+        raise UserError(msg)
+    rng = spec["priors"]["break_range"]
+    if rng["lower_quantile"] >= rng["upper_quantile"]:
+        msg = (
+            f"{source}: key 'priors.break_range': bad value {rng!r}: lower_quantile must be "
+            "below upper_quantile"
+        )
+        raise UserError(msg)
+    sigma = spec["priors"]["sigma"]
+    if "fixed" in sigma and "sd" in sigma:
+        msg = f"{source}: key 'priors.sigma': bad value {sigma!r}: give either sd or fixed"
+        raise UserError(msg)
+    if size == "ratio" and "fixed" in sigma:
+        msg = (
+            f"{source}: key 'priors.sigma.fixed': in ratio mode the residual SD follows from "
+            "the error ratio and cannot be fixed"
+        )
+        raise UserError(msg)
+    if spec["curvature"] == "shared_and_taxa" and spec["taxa"]["levels"] == "none":
+        msg = (
+            f"{source}: key 'curvature': bad value 'shared_and_taxa': per-taxon curvature "
+            "needs taxon levels (taxa.levels is 'none')"
+        )
+        raise UserError(msg)
+
+
+def _fill_defaults(node: Any, schema: dict[str, Any], root: dict[str, Any]) -> None:
+    schema = _resolve(schema, root)
+    if isinstance(node, list) and "items" in schema:
+        for item in node:
+            _fill_defaults(item, schema["items"], root)
+        return
+    if not isinstance(node, dict):
+        return
+    for key, sub in schema.get("properties", {}).items():
+        default = sub.get("default")
+        resolved = _resolve(sub, root)
+        if key not in node and default is not None:
+            node[key] = copy.deepcopy(default)
+        elif key in node and isinstance(node[key], dict) and isinstance(default, dict):
+            # a partly given prior keeps the default's other entries ({"sd": 2} → mean too)
+            for dkey, dval in default.items():
+                if dkey == "sd" and "fixed" in node[key]:
+                    continue
+                node[key].setdefault(dkey, copy.deepcopy(dval))
+        if key in node:
+            _fill_defaults(node[key], resolved, root)
+
+
+def _resolve(schema: dict[str, Any], root: dict[str, Any]) -> dict[str, Any]:
+    while "$ref" in schema:
+        target: Any = root
+        for part in schema["$ref"].removeprefix("#/").split("/"):
+            target = target[part]
+        schema = target
+    return schema
