@@ -54,9 +54,10 @@ def configure_job(threads: int) -> dict[str, str]:
     env["JAX_COMPILATION_CACHE_DIR"] = str(jax_dir)
     env["JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS"] = "0"
     env["JAX_PLATFORMS"] = "cpu"
+    # One XLA host device per core (numpyro runs parallel chains on devices); no Eigen thread
+    # pool inside a device, so a job never uses more than its cores.
     env["XLA_FLAGS"] = (
-        f"--xla_force_host_platform_device_count={threads} "
-        "--xla_cpu_multi_thread_eigen=false intra_op_parallelism_threads=1"
+        f"--xla_force_host_platform_device_count={threads} --xla_cpu_multi_thread_eigen=false"
     )
     os.environ.update(env)
     return env
