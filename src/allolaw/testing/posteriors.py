@@ -20,7 +20,13 @@ from dataclasses import dataclass
 import arviz as az
 import numpy as np
 
-__all__ = ["ConjugateLine", "conjugate_line_posterior", "line_posterior"]
+__all__ = [
+    "ConjugateHierarchy",
+    "ConjugateLine",
+    "conjugate_hierarchy_posterior",
+    "conjugate_line_posterior",
+    "line_posterior",
+]
 
 
 def line_posterior(
@@ -236,3 +242,73 @@ def _sample_stats(
 def _log_normal(x: float, mean: float, sd: float) -> float:
     return float(-0.5 * ((x - mean) / sd) ** 2 - np.log(sd) - 0.5 * np.log(2 * np.pi))
 
+
+
+@dataclass
+class ConjugateHierarchy:
+    """Exact posterior of a normal–normal hierarchy with known SDs (population + taxa).
+
+    ``taxon_exponent__group[j] ~ N(exponent, tau²)``, a per-taxon slope estimate
+    ``est_j ~ N(taxon_exponent__group[j], se_j²)``, ``exponent ~ N(prior_mean, prior_sd²)``;
+    every distribution is normal, so the joint posterior is normal (Gelman et al. 2013,
+    *Bayesian Data Analysis*, 3rd ed., section 5.4, with tau known).
+    """
+
+    idata: az.InferenceData
+    post_mean: float
+    post_sd: float
+    prior_mean: float
+    prior_sd: float
+
+    def log_bf(self, value: float) -> float:
+        """Closed-form Savage–Dickey log BF of ``exponent == value`` vs the free model."""
+        return _log_normal(value, self.post_mean, self.post_sd) - _log_normal(
+            value, self.prior_mean, self.prior_sd
+        )
+
+
+def conjugate_hierarchy_posterior(
+    *,
+    seed: int = 0,
+    n_taxa: int = 8,
+    tau: float = 0.1,
+    true_exponent: float = 0.72,
+    prior_mean: float = 1.0,
+    prior_sd: float = 1.0,
+    chains: int = 4,
+    draws: int = 1000,
+) -> ConjugateHierarchy:
+    """Exact joint posterior draws of a population exponent and its taxa (tau known)."""
+    rng = np.random.default_rng(seed)
+    se = rng.uniform(0.03, 0.1, n_taxa)
+    theta = true_exponent + tau * rng.standard_normal(n_taxa)
+    est = theta + se * rng.standard_normal(n_taxa)
+    # joint prior of (exponent, theta_1..J)
+    n = n_taxa + 1
+    prior_cov = np.full((n, n), prior_sd**2)
+    prior_cov[1:, 1:] += tau**2 * np.eye(n_taxa)
+    prior_mu = np.full(n, prior_mean)
+    # observe est = H z + noise with H picking the thetas
+    H = np.hstack([np.zeros((n_taxa, 1)), np.eye(n_taxa)])
+    S = H @ prior_cov @ H.T + np.diag(se**2)
+    gain = prior_cov @ H.T @ np.linalg.inv(S)
+    mean = prior_mu + gain @ (est - H @ prior_mu)
+    cov = prior_cov - gain @ H @ prior_cov
+    z = rng.multivariate_normal(mean, cov, size=(chains, draws))
+    labels = [f"taxon{j}" for j in range(n_taxa)]
+    idata = az.from_dict(
+        posterior={
+            "exponent": z[..., 0],
+            "exponent_sd__group": np.full((chains, draws), tau),
+            "taxon_exponent__group": z[..., 1:],
+        },
+        coords={"group": labels},
+        dims={"taxon_exponent__group": ["group"]},
+    )
+    return ConjugateHierarchy(
+        idata=idata,
+        post_mean=float(mean[0]),
+        post_sd=float(np.sqrt(cov[0, 0])),
+        prior_mean=prior_mean,
+        prior_sd=prior_sd,
+    )

@@ -1,0 +1,162 @@
+"""Savage–Dickey hypothesis probabilities against closed forms and independent evidence."""
+
+import math
+
+import numpy as np
+import pytest
+
+from allolaw.hypotheses import COLUMNS, compare_hypotheses
+from allolaw.testing.posteriors import (
+    conjugate_hierarchy_posterior,
+    conjugate_line_posterior,
+    line_posterior,
+)
+
+
+def _settings(values, **extra):
+    out = {
+        "exponents": [{"name": f"b={v:.4g}", "value": v, "weight": 1} for v in values],
+        "other_weight": 1,
+        "interval_halfwidth": 0.03,
+        "bounds": [],
+        "prior_scale_factors": [0.5, 2.0],
+    }
+    out.update(extra)
+    return out
+
+
+def _spec(prior_mean, prior_sd, **extra):
+    spec = {"name": "toy", "residuals": "normal", "curvature": "none", "breakpoint": "none",
+            "priors": {"exponent": {"mean": prior_mean, "sd": prior_sd},
+                       "exponent_sd": {"sd": 0.25}}}
+    spec.update(extra)
+    return spec
+
+
+def _points(table, parameter="exponent"):
+    rows = table[(table["parameter"] == parameter) & (table["kind"] == "point")]
+    return rows.set_index("value")
+
+
+def test_savage_dickey_matches_the_closed_form_bayes_factor_of_a_conjugate_line():
+    # Closed form: BF01 = N(v; posterior) / N(v; prior) for the slope of a normal linear model
+    # with known variance (Dickey 1971, Ann. Math. Stat. 42:204; Wagenmakers et al. 2010,
+    # Cognitive Psychology 60:158, eq. 4). Tolerance: BF within 10% (|Δ log BF| < log 1.1).
+    line = conjugate_line_posterior(seed=1)
+    values = [0.6667, 0.75, 1.0]
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5), _settings(values))
+    rows = _points(table)
+    for v in values:
+        assert abs(rows.loc[v, "log_bf"] - line.log_bf(v)) < math.log(1.1)
+    assert rows["method"].str.contains("Rao–Blackwellised").all()
+
+
+def test_conditional_density_stays_exact_six_posterior_sds_into_the_tail():
+    # Same closed form; a kernel density estimate is far off here (it decays like the kernel).
+    line = conjugate_line_posterior(seed=2)
+    far = line.post_mean + 6 * line.post_sd
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5), _settings([far]))
+    got = float(_points(table).iloc[0]["log_bf"])
+    assert got == pytest.approx(line.log_bf(far), abs=math.log(1.1))
+
+
+def test_population_exponent_of_a_hierarchy_matches_its_closed_form():
+    # Normal–normal hierarchy with the taxon SD known: exact marginal posterior of the
+    # population exponent (Gelman et al. 2013, Bayesian Data Analysis 3rd ed., section 5.4).
+    h = conjugate_hierarchy_posterior(seed=2)
+    values = [0.6667, 0.75, h.post_mean + 3 * h.post_sd]
+    table = compare_hypotheses(h.idata, _spec(1.0, 1.0), _settings(values))
+    rows = _points(table)
+    for v in values:
+        assert abs(rows.loc[v, "log_bf"] - h.log_bf(v)) < math.log(1.1)
+    assert rows["method"].str.contains("Rao–Blackwellised").all()
+
+
+def test_skew_normal_fallback_matches_the_closed_form_near_the_bulk():
+    # Same closed form as above; the parametric density is used when no conditional applies.
+    line = conjugate_line_posterior(seed=3)
+    values = [line.post_mean - line.post_sd, line.post_mean + 2 * line.post_sd]
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5), _settings(values),
+                               density="skew_normal")
+    rows = _points(table)
+    for v in values:
+        assert abs(rows.loc[v, "log_bf"] - line.log_bf(v)) < math.log(1.1)
+    assert rows["method"].str.contains("skew-normal").all()
+
+
+def test_posterior_probabilities_follow_prior_weights_and_sum_to_one():
+    line = conjugate_line_posterior(seed=4)
+    values = [0.6667, 0.75, 1.0]
+    settings = _settings(values)
+    settings["exponents"][1]["weight"] = 3
+    settings["other_weight"] = 2
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5), settings)
+    pop = table[(table["parameter"] == "exponent") & (table["kind"] != "bound")]
+    assert pop["posterior_prob"].sum() == pytest.approx(1.0)
+    # P(H_k|y) ∝ π_k BF_k with BF_other = 1 (Kass & Raftery 1995, JASA 90:773, eq. 1).
+    bf = np.exp(pop["log_bf"].to_numpy())
+    weights = pop["prior_weight"].to_numpy()
+    expected = weights * bf / np.sum(weights * bf)
+    np.testing.assert_allclose(pop["posterior_prob"].to_numpy(), expected, rtol=1e-9)
+
+
+def test_halved_and_doubled_prior_match_the_closed_form_with_that_prior():
+    # The conjugate posterior under prior SD × 0.5 and × 2 is again closed form (same data:
+    # the generator draws the data before it uses the prior).
+    values = [0.6667, 0.75, 1.0]
+    base = conjugate_line_posterior(seed=5, prior_sd=0.5)
+    table = compare_hypotheses(base.idata, _spec(0.75, 0.5), _settings(values))
+    rows = _points(table)
+    columns = [(0.5, "posterior_prob_prior_half"), (2.0, "posterior_prob_prior_double")]
+    for factor, column in columns:
+        exact = conjugate_line_posterior(seed=5, prior_sd=0.5 * factor)
+        log_bf = np.array([exact.log_bf(v) for v in values])
+        probs = np.exp(log_bf) / (np.exp(log_bf).sum() + 1.0)
+        np.testing.assert_allclose(rows[column].to_numpy(), probs, atol=0.02)
+
+
+def test_bound_and_interval_probabilities_match_the_normal_posterior():
+    from scipy import stats
+
+    line = conjugate_line_posterior(seed=6)
+    settings = _settings([0.75], bounds=[{"name": "sub-linear", "below": 1.0},
+                                         {"name": "steep", "above": 0.9}])
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5), settings)
+    post = stats.norm(line.post_mean, line.post_sd)  # exact posterior (closed form)
+    bounds = table[table["kind"] == "bound"].set_index("value")
+    assert bounds.loc[1.0, "posterior_prob"] == pytest.approx(post.cdf(1.0), abs=0.01)
+    assert bounds.loc[0.9, "posterior_prob"] == pytest.approx(post.sf(0.9), abs=0.01)
+    interval = _points(table).loc[0.75, "interval_prob"]
+    assert interval == pytest.approx(post.cdf(0.78) - post.cdf(0.72), abs=0.01)
+
+
+def test_true_value_gets_the_highest_probability_and_is_most_often_nearest():
+    line = conjugate_line_posterior(seed=7, true_exponent=0.75, n_obs=200, sigma=0.2)
+    table = compare_hypotheses(line.idata, _spec(1.0, 1.0), _settings([0.6667, 0.75, 1.0]))
+    rows = _points(table)
+    assert rows["posterior_prob"].idxmax() == 0.75
+    assert rows["nearest_prob"].idxmax() == 0.75
+    assert not rows["conclusion_changes"].any()
+
+
+def test_curvature_models_say_the_exponent_is_local():
+    line = conjugate_line_posterior(seed=8)
+    table = compare_hypotheses(line.idata, _spec(0.75, 0.5, curvature="shared"),
+                               _settings([0.75]))
+    assert table["note"].str.contains("local").all()
+
+
+def test_table_has_the_contract_columns_and_one_other_row_per_parameter():
+    h = conjugate_hierarchy_posterior(seed=9, n_taxa=4)
+    table = compare_hypotheses(h.idata, _spec(1.0, 1.0), _settings([0.75, 1.0]))
+    assert list(table.columns[: len(COLUMNS)]) == COLUMNS
+    others = table[table["kind"] == "other"]
+    assert len(others) == 5  # population + 4 taxa
+    assert set(table.loc[table["parameter"] == "taxon_exponent", "level"]) == {"group"}
+
+
+def test_student_t_residuals_use_the_parametric_density():
+    idata = line_posterior(seed=10)
+    table = compare_hypotheses(idata, _spec(0.75, 0.5, residuals="student_t"),
+                               _settings([0.75]))
+    assert table["method"].str.contains("skew-normal").all()
