@@ -1,0 +1,332 @@
+"""Tests for allolaw.fitting: groups, log-likelihood, seeding, fallback, the fit stage's file."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import arviz as az
+import numpy as np
+import pandas as pd
+import pymc as pm
+import pytest
+from scipy import stats
+
+from allolaw import fitting
+from allolaw.errors import UserError
+from allolaw.fitting import derive_seed, fit_dataset_model, fit_model, resolve_backend
+
+REPO = Path(__file__).resolve().parents[1]
+SIGMA = 0.3  # known residual SD of the conjugate test model
+PRIOR_SD = 2.0
+SMALL = {"chains": 2, "draws": 150, "tune": 150, "threads": 1, "prior_draws": 40}
+
+
+def _line_data(n: int = 25, seed: int = 7) -> tuple[np.ndarray, np.ndarray]:
+    # Invented data with known truth (intercept 0.4, exponent 0.75), only for these checks.
+    rng = np.random.default_rng(seed)
+    x = rng.normal(0.0, 1.0, n)
+    y = 0.4 + 0.75 * x + rng.normal(0.0, SIGMA, n)
+    return x, y
+
+
+def _tiny_model() -> pm.Model:
+    # Same variable names as modeling.build_model: intercept, exponent, sigma, observed `trait`
+    # over `species`, a constant `log_size_obs`, and one taxon level with its own deviations.
+    x, y = _line_data()
+    n = len(x)
+    family = np.arange(n) % 3
+    coords = {"species": [f"sp{i}" for i in range(n)], "family": ["fa", "fb", "fc"]}
+    with pm.Model(coords=coords) as model:
+        log_size_obs = pm.Data("log_size_obs", x, dims="species")
+        intercept = pm.Normal("intercept", 0.0, PRIOR_SD)
+        exponent = pm.Normal("exponent", 0.0, PRIOR_SD)
+        sd = pm.HalfNormal("intercept_sd__family", 0.1)
+        z = pm.Normal("taxon_z__family", 0.0, 1.0, dims="family")
+        taxon = pm.Deterministic("taxon_intercept__family", intercept + sd * z, dims="family")
+        sigma = pm.HalfNormal("sigma", 1.0)
+        pm.Normal("trait", taxon[family] + exponent * log_size_obs, sigma, observed=y,
+                  dims="species")
+    return model
+
+
+def _conjugate_model() -> pm.Model:
+    # Normal linear model with known residual SD and independent normal priors: the posterior
+    # of (intercept, exponent) is normal in closed form.
+    x, y = _line_data()
+    coords = {"species": [f"sp{i}" for i in range(len(x))]}
+    with pm.Model(coords=coords) as model:
+        log_size_obs = pm.Data("log_size_obs", x, dims="species")
+        intercept = pm.Normal("intercept", 0.0, PRIOR_SD)
+        exponent = pm.Normal("exponent", 0.0, PRIOR_SD)
+        sigma = pm.Deterministic("sigma", pm.math.constant(SIGMA))
+        pm.Normal("trait", intercept + exponent * log_size_obs, sigma, observed=y, dims="species")
+    return model
+
+
+@pytest.fixture(scope="module")
+def tiny_fit() -> az.InferenceData:
+    return fit_model(_tiny_model(), seed=11, **SMALL)
+
+
+@pytest.mark.mcmc
+def test_fit_model_returns_every_group_with_model_dims(tiny_fit: az.InferenceData) -> None:
+    groups = set(tiny_fit.groups())
+    expected = {"posterior", "sample_stats", "log_likelihood", "posterior_predictive",
+                "prior", "prior_predictive", "observed_data", "constant_data"}
+    assert expected <= groups
+    post = tiny_fit.posterior
+    assert post["exponent"].dims == ("chain", "draw")
+    assert post["taxon_intercept__family"].dims == ("chain", "draw", "family")
+    assert list(post["taxon_intercept__family"].coords["family"].values) == ["fa", "fb", "fc"]
+    assert post.sizes["chain"] == 2
+    assert post.sizes["draw"] == 150
+    assert tiny_fit.posterior_predictive["trait"].dims == ("chain", "draw", "species")
+    assert tiny_fit.prior["exponent"].sizes["draw"] == 40
+    assert "trait" in tiny_fit.prior_predictive
+    assert "trait" in tiny_fit.observed_data
+    assert "log_size_obs" in tiny_fit.constant_data
+    assert "diverging" in tiny_fit.sample_stats
+    for key in ("backend", "seed", "compile_seconds", "sampling_seconds", "wall_seconds"):
+        assert key in tiny_fit.attrs
+
+
+@pytest.mark.mcmc
+def test_log_likelihood_holds_only_trait_and_equals_normal_density(
+    tiny_fit: az.InferenceData,
+) -> None:
+    assert list(tiny_fit.log_likelihood.data_vars) == ["trait"]
+    ll = tiny_fit.log_likelihood["trait"]
+    assert ll.dims == ("chain", "draw", "species")
+    # Recompute for a few draws with scipy's normal log-density (the model's likelihood).
+    post = tiny_fit.posterior
+    x = tiny_fit.constant_data["log_size_obs"].values
+    y = tiny_fit.observed_data["trait"].values
+    family = np.arange(len(x)) % 3
+    for chain, draw in [(0, 0), (1, 77), (0, 149)]:
+        taxon = post["taxon_intercept__family"].values[chain, draw]
+        mu = taxon[family] + post["exponent"].values[chain, draw] * x
+        expected = stats.norm.logpdf(y, mu, post["sigma"].values[chain, draw])
+        np.testing.assert_allclose(ll.values[chain, draw], expected, rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.mcmc
+def test_same_seed_gives_identical_draws_on_the_default_backend(
+    tiny_fit: az.InferenceData,
+) -> None:
+    again = fit_model(_tiny_model(), seed=11, **SMALL)
+    assert again.attrs["backend"] == tiny_fit.attrs["backend"] == resolve_backend("auto")
+    for name in ("intercept", "exponent", "sigma", "taxon_intercept__family"):
+        np.testing.assert_array_equal(again.posterior[name].values,
+                                      tiny_fit.posterior[name].values)
+    np.testing.assert_array_equal(again.prior["exponent"].values,
+                                  tiny_fit.prior["exponent"].values)
+    np.testing.assert_array_equal(again.posterior_predictive["trait"].values,
+                                  tiny_fit.posterior_predictive["trait"].values)
+    other = fit_model(_tiny_model(), seed=12, **SMALL)
+    assert not np.array_equal(other.posterior["exponent"].values,
+                              tiny_fit.posterior["exponent"].values)
+
+
+@pytest.mark.mcmc
+def test_default_backend_recovers_the_conjugate_normal_posterior() -> None:
+    idata = fit_model(_conjugate_model(), seed=5, chains=2, draws=300, tune=300,
+                      prior_draws=20)
+    x, y = _line_data()
+    # Closed form: posterior precision = X'X/σ² + I/τ², mean = cov · X'y/σ²
+    # (Gelman et al. 2013, Bayesian Data Analysis 3rd ed., section 14.8, conjugate normal prior).
+    design = np.column_stack([np.ones_like(x), x])
+    precision = design.T @ design / SIGMA**2 + np.eye(2) / PRIOR_SD**2
+    cov = np.linalg.inv(precision)
+    mean = cov @ design.T @ y / SIGMA**2
+    for i, name in enumerate(("intercept", "exponent")):
+        draws = idata.posterior[name]
+        mcse = float(az.mcse(idata, var_names=[name])[name])
+        # 5 Monte Carlo standard errors: a wrong posterior fails, MC noise does not
+        # (common practice, no source).
+        assert abs(float(draws.mean()) - mean[i]) < 5 * mcse
+        assert float(draws.std()) == pytest.approx(np.sqrt(cov[i, i]), rel=0.15)
+
+
+@pytest.mark.mcmc
+def test_failing_backend_falls_back_to_pymc_and_records_why(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    original = fitting._sample
+
+    def broken(model, backend, **kwargs):
+        if backend != "pymc":
+            msg = "simulated compile failure"
+            raise RuntimeError(msg)
+        return original(model, backend, **kwargs)
+
+    monkeypatch.setattr(fitting, "_sample", broken)
+    idata = fit_model(_tiny_model(), seed=3, backend="nutpie", **SMALL)
+    assert idata.attrs["backend"] == "pymc"
+    assert idata.attrs["backend_requested"] == "nutpie"
+    assert "simulated compile failure" in idata.attrs["backend_fallback"]
+    assert "posterior" in idata.groups()
+
+
+def test_pymc_backend_failure_is_not_hidden(monkeypatch: pytest.MonkeyPatch) -> None:
+    def broken(model, backend, **kwargs):
+        msg = f"{backend} broke"
+        raise RuntimeError(msg)
+
+    monkeypatch.setattr(fitting, "_sample", broken)
+    with pytest.raises(RuntimeError, match="pymc broke"):
+        fit_model(_tiny_model(), seed=3, backend="pymc", **SMALL)
+
+
+def test_unknown_backend_is_a_user_error() -> None:
+    with pytest.raises(UserError, match="stan"):
+        resolve_backend("stan")
+
+
+def test_model_without_observed_trait_is_refused() -> None:
+    with pm.Model() as model:
+        pm.Normal("intercept", 0.0, 1.0)
+    with pytest.raises(ValueError, match="trait"):
+        fit_model(model, seed=1)
+
+
+def test_derived_seed_is_stable_across_processes_and_separates_models() -> None:
+    code = ("from allolaw.fitting import derive_seed; "
+            "print(derive_seed(20261202, 'island_metabolism', 'taxa'))")
+    outs = set()
+    for hash_seed in ("0", "1"):
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                             check=True, env={"PYTHONHASHSEED": hash_seed, "PATH": ""})
+        outs.add(int(out.stdout.strip()))
+    assert outs == {derive_seed(20261202, "island_metabolism", "taxa")}
+    seeds = {derive_seed(20261202, d, m) for d in ("a", "b") for m in ("taxa", "pooled")}
+    assert len(seeds) == 4
+    assert all(0 <= s < 2**32 for s in seeds)
+
+
+# --- the fit stage -------------------------------------------------------------------------
+
+def _write_prepared(results: Path, dataset: str) -> None:
+    # A clean.csv per the DEVELOPERS.md contract (invented values with known truth).
+    x, y = _line_data(n=20, seed=2)
+    n = len(x)
+    table = pd.DataFrame({
+        "species": [f"Species {i}" for i in range(n)],
+        "family": [f"F{i % 3}" for i in range(n)],
+        "log_size": x + np.log(50.0),
+        "log_trait": y,
+        "n_rows": 1,
+        "within_sd_log_size": np.nan,
+        "within_sd_log_trait": np.nan,
+        "sd_log_size": 0.05,
+        "sd_log_trait": 0.05,
+        "sd_source_size": "pooled",
+        "sd_source_trait": "pooled",
+        "source": "test",
+        "flag_outlier": False,
+        "flag_singleton_taxon": False,
+    })
+    folder = results / dataset
+    folder.mkdir(parents=True)
+    table.to_csv(folder / "clean.csv", index=False)
+    prepared = {"dataset": dataset, "reference_size": 50.0,
+                "log_reference_size": float(np.log(50.0)), "levels": ["family"]}
+    (folder / "prepared.json").write_text(json.dumps(prepared), encoding="utf-8")
+
+
+def _stage_config(tmp_path: Path) -> dict:
+    from allolaw.config import validate_config
+
+    raw = {
+        "results_dir": str(tmp_path / "results"),
+        "models_dir": str(REPO / "models"),
+        "sampler": {"chains": 2, "draws": 100, "tune": 100, "seed": 99, "prior_draws": 20},
+        "datasets": {"toy": {
+            "title": "toy",
+            "size": {"quantity": "mass", "unit": "g", "label": "mass"},
+            "trait": {"quantity": "power", "unit": "W", "label": "rate"},
+            "reference_size": 50,
+            "sources": [{"file": "toy.csv", "columns": {"species": "species", "size": "m",
+                                                         "trait": "r", "levels": ["family"]},
+                         "units": {"size": "g", "trait": "W"}}],
+            "models": ["pooled"],
+        }},
+    }
+    return validate_config(raw)
+
+
+@pytest.mark.mcmc
+def test_fit_dataset_model_writes_posterior_with_every_attribute(tmp_path: Path) -> None:
+    config = _stage_config(tmp_path)
+    results = Path(config["results_dir"])
+    _write_prepared(results, "toy")
+    idata = fit_dataset_model(config, "toy", "pooled")
+    path = results / "toy" / "pooled" / "posterior.nc"
+    assert path.is_file()
+    assert not list(path.parent.glob("*.partial"))
+    back = az.from_netcdf(path)
+    for key in ("allolaw_version", "dataset", "model", "spec", "sampler", "backend", "seed",
+                "data_sha256", "versions", "log_reference_size", "compile_seconds",
+                "sampling_seconds", "wall_seconds"):
+        assert key in back.attrs, key
+    assert back.attrs["dataset"] == "toy"
+    assert back.attrs["model"] == "pooled"
+    assert int(back.attrs["seed"]) == derive_seed(99, "toy", "pooled")
+    import hashlib
+    digest = hashlib.sha256((results / "toy" / "clean.csv").read_bytes()).hexdigest()
+    assert back.attrs["data_sha256"] == digest
+    assert json.loads(back.attrs["sampler"])["draws"] == 100
+    assert "pymc" in json.loads(back.attrs["versions"])
+    assert float(back.attrs["log_reference_size"]) == pytest.approx(np.log(50.0))
+    assert set(idata.groups()) <= set(back.groups())
+    np.testing.assert_array_equal(back.posterior["exponent"].values,
+                                  idata.posterior["exponent"].values)
+    assert list(back.log_likelihood.data_vars) == ["trait"]
+
+
+def test_failed_fit_leaves_no_posterior_file(tmp_path: Path,
+                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    config = _stage_config(tmp_path)
+    results = Path(config["results_dir"])
+    _write_prepared(results, "toy")
+
+    def broken_fit(*args, **kwargs):
+        msg = "sampler exploded"
+        raise RuntimeError(msg)
+
+    monkeypatch.setattr(fitting, "fit_model", broken_fit)
+    with pytest.raises(RuntimeError, match="exploded"):
+        fit_dataset_model(config, "toy", "pooled")
+    assert not (results / "toy" / "pooled" / "posterior.nc").exists()
+
+
+def test_interrupted_write_leaves_no_partial_file(tmp_path: Path,
+                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    config = _stage_config(tmp_path)
+    results = Path(config["results_dir"])
+    _write_prepared(results, "toy")
+    small = az.from_dict(posterior={"exponent": np.zeros((1, 5))})
+
+    def fake_fit(model, **kwargs):
+        return small
+
+    def half_write(self, filename, **kwargs):
+        Path(filename).write_bytes(b"half a file")
+        msg = "disk full"
+        raise OSError(msg)
+
+    monkeypatch.setattr(fitting, "fit_model", fake_fit)
+    monkeypatch.setattr(az.InferenceData, "to_netcdf", half_write)
+    with pytest.raises(OSError, match="disk full"):
+        fit_dataset_model(config, "toy", "pooled")
+    folder = results / "toy" / "pooled"
+    assert not (folder / "posterior.nc").exists()
+    assert list(folder.iterdir()) == []
+
+
+def test_missing_prepared_table_is_a_user_error(tmp_path: Path) -> None:
+    config = _stage_config(tmp_path)
+    with pytest.raises(UserError, match="allolaw prepare"):
+        fit_dataset_model(config, "toy", "pooled")
