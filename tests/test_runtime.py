@@ -1,0 +1,65 @@
+"""Tests for allolaw.runtime: thread variables and compile caches really take effect.
+
+Each check runs in a fresh subprocess, so the test process's environment and already-imported
+libraries are untouched.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+_PROBE = r"""
+import json, os, sys
+from allolaw.runtime import configure_job
+env = configure_job(int(sys.argv[1]))
+import pytensor
+import jax
+import jax.numpy as jnp
+jax.jit(lambda v: jnp.sin(v) * 2.0 + 1.0)(jnp.arange(3.0)).block_until_ready()
+print(json.dumps({
+    "env": env,
+    "environ": {k: os.environ[k] for k in env},
+    "pytensor_base": str(pytensor.config.base_compiledir),
+    "jax_cache": jax.config.jax_compilation_cache_dir,
+    "jax_min_time": jax.config.jax_persistent_cache_min_compile_time_secs,
+    "devices": jax.local_device_count(),
+}))
+"""
+
+
+def _probe(tmp_path: Path, threads: int) -> dict:
+    env = {k: v for k, v in os.environ.items()
+           if not k.startswith(("OMP_", "MKL_", "OPENBLAS_", "NUMBA_", "PYTENSOR_", "JAX_",
+                                "XLA_"))}
+    env["ALLOLAW_CACHE_DIR"] = str(tmp_path / "cache")
+    out = subprocess.run([sys.executable, "-c", _PROBE, str(threads)], capture_output=True,
+                         text=True, env=env, cwd=tmp_path, check=False, timeout=300)
+    assert out.returncode == 0, out.stderr
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def test_configure_job_sets_threads_and_caches_that_libraries_use(tmp_path: Path) -> None:
+    result = _probe(tmp_path, 3)
+    cache = tmp_path / "cache"
+    for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS",
+                "NUMBA_NUM_THREADS"):
+        assert result["environ"][var] == "3"
+    assert result["environ"] == result["env"]
+    # pytensor compiles into the job cache, JAX writes its persistent cache there.
+    assert Path(result["pytensor_base"]) == cache / "pytensor"
+    assert Path(result["jax_cache"]) == cache / "jax"
+    assert result["jax_min_time"] == 0
+    assert any((cache / "jax").iterdir()), "JAX wrote nothing to its persistent cache"
+    # One XLA host device per thread, for numpyro's parallel chains.
+    assert result["devices"] == 3
+    assert "--xla_force_host_platform_device_count=3" in result["environ"]["XLA_FLAGS"]
+
+
+def test_configure_job_counts_at_least_one_thread(tmp_path: Path) -> None:
+    result = _probe(tmp_path, 0)
+    assert result["environ"]["OMP_NUM_THREADS"] == "1"
+    assert result["devices"] == 1
