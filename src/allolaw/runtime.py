@@ -23,8 +23,19 @@ _THREAD_VARS = (
 
 
 def cache_root() -> Path:
-    """Local-disk cache folder: ``$ALLOLAW_CACHE_DIR``, else ``.cache/allolaw`` in the cwd."""
-    return Path(os.environ.get("ALLOLAW_CACHE_DIR", Path.cwd() / ".cache" / "allolaw"))
+    """Local-disk cache folder.
+
+    ``$ALLOLAW_CACHE_DIR`` if set; else, inside a SLURM job, ``/tmp/<user>/allolaw-cache`` on
+    the node's own disk (the working directory there is usually a shared file system, and
+    ``/tmp`` outlives the job, so later jobs on the node find the cache warm); else
+    ``.cache/allolaw`` in the working directory.
+    """
+    if "ALLOLAW_CACHE_DIR" in os.environ:
+        return Path(os.environ["ALLOLAW_CACHE_DIR"])
+    if "SLURM_JOB_ID" in os.environ:
+        user = os.environ.get("USER") or str(os.getuid())
+        return Path("/tmp") / user / "allolaw-cache"
+    return Path.cwd() / ".cache" / "allolaw"
 
 
 def configure_job(threads: int) -> dict[str, str]:
