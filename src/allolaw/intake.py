@@ -418,7 +418,11 @@ def _read_table(source: dict[str, Any]) -> _Table:
     if not path.is_file():
         msg = f"{path}: source file not found (paths are relative to the folder you run from)"
         raise UserError(msg)
-    raw = path.read_bytes()
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        msg = f"{path}: cannot read the file ({err.strerror})"
+        raise UserError(msg) from None
     digest = hashlib.sha256(raw).hexdigest()
     try:
         text = raw.decode("utf-8-sig")  # strips a byte-order mark if there is one
@@ -605,6 +609,9 @@ def _parse_rows(
         if len(cells) < width or any(c.strip() for c in extra):
             reason = (
                 f"has {len(cells)} fields, the header has {width} (stray or missing delimiter?)"
+                if not any("\n" in c for c in cells)
+                else f"has {len(cells)} fields, the header has {width}; a quote opened on this "
+                "line runs over line ends (unclosed quote?)"
             )
             _add(rows, file, line, _cell(cells, index, cols["species"]), reason, {})
             continue
