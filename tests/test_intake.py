@@ -653,3 +653,36 @@ def test_demo_cell_rates_are_converted_from_amol_per_minute(demo_results):
     # 1 amol/min = 0.06 fmol/h (1e-18 mol × 60 per hour); the mean of logs of the replicates.
     expected = np.mean(np.log(first["uptake_amol_min"].astype(float) * 0.06))
     assert clean.loc["AST-001", "log_trait"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_unclosed_quote_is_named_in_the_reason(tmp_path):
+    _, ledger, prepared = _prepare(tmp_path, GOOD + '"Mus delta,Muridae,41,0.36\n')
+    assert "unclosed quote" in _dropped(ledger)[7]
+    _assert_ledger_adds_up(ledger, prepared, 6)
+
+
+def test_missing_covariate_drops_the_row_and_negative_sd_too(tmp_path):
+    text = ("species,family,mass,mass_sd,rate,temp\n"
+            "A a,F,1,0.1,1,37\nA b,F,2,-0.1,2,37\nA c,F,3,0.1,3,NA\n")
+    source = {
+        "columns": {"species": "species", "size": "mass", "trait": "rate", "levels": ["family"],
+                    "size_sd": "mass_sd", "covariates": ["temp"]},
+        "units": {"size": "g", "trait": "W", "temp": "degC"},
+    }
+    _, ledger, prepared = _prepare(tmp_path, text, source=source, covariates={"temp": "K"})
+    assert _dropped(ledger) == {
+        3: "negative SD in column 'mass_sd': '-0.1'",
+        4: "missing value in column 'temp' (cell 'NA')",
+    }
+    _assert_ledger_adds_up(ledger, prepared, 3)
+
+
+def test_covariate_unit_without_canonical_unit_is_a_user_error(tmp_path):
+    text = "species,family,mass,rate,temp\nA a,F,1,1,37\n"
+    source = {
+        "columns": {"species": "species", "size": "mass", "trait": "rate", "levels": ["family"],
+                    "covariates": ["temp"]},
+        "units": {"size": "g", "trait": "W", "temp": "degC"},
+    }
+    message = _error(tmp_path, text, source=source)
+    assert "covariate 'temp' has a unit in the source but no canonical unit" in message
