@@ -1,0 +1,541 @@
+"""Tests of the audit report (allolaw.report, allolaw.plots).
+
+Every input is a hand-built results folder that follows the data contracts of DEVELOPERS.md
+(clean.csv, ledger.csv, prepared.json, posterior.nc, checks/<m>.json, hypotheses.csv,
+comparison.csv, curvature_audit.json, breakpoint.json), with known posterior draws; nothing
+here runs MCMC. The numbers on the page are compared with those files, parsed independently.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+from html import unescape
+from html.parser import HTMLParser
+from pathlib import Path
+
+import arviz as az
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from allolaw import plots, report
+from allolaw.config import config_sha256, validate_config
+
+REPO = Path(__file__).resolve().parents[1]
+HOSTILE_SPECIES = "<script>alert(1)</script>"
+HOSTILE_TAXON = "Rock & \"Roll\" 'n'"
+PRIMARY = "taxa_errors"
+CURVED = "taxa_errors_curved"
+BREAK = "breakpoint"
+TRUE_EXPONENT = 0.75
+
+
+# --- fixture: a results folder following the contracts --------------------------------------
+def build_results(root: Path, *, seed: int = 3) -> dict:
+    """Write a complete results folder for one dataset ``demo`` under ``root``; return config."""
+    rng = np.random.default_rng(seed)
+    config = validate_config(
+        {
+            "results_dir": str(root / "results"),
+            "reports_dir": str(root / "reports"),
+            "models_dir": str(REPO / "models"),
+            "sampler": {"chains": 2, "draws": 300, "tune": 300, "seed": 11},
+            "datasets": {
+                "demo": {
+                    "title": "Invented test dataset & <b>bold</b> title",
+                    "size": {"quantity": "mass", "unit": "g", "label": "body mass"},
+                    "trait": {"quantity": "power", "unit": "W", "label": "metabolic rate"},
+                    "reference_size": 100,
+                    "sources": [{
+                        "file": "data/test/demo.csv",
+                        "columns": {"species": "species", "size": "mass", "trait": "rate",
+                                    "levels": ["order", "family"]},
+                        "units": {"size": "g", "trait": "W"},
+                    }],
+                    "models": [PRIMARY, CURVED, BREAK],
+                    "primary_model": PRIMARY,
+                }
+            },
+        }
+    )
+    res = Path(config["results_dir"]) / "demo"
+    res.mkdir(parents=True)
+    orders = {HOSTILE_TAXON: ["Fam A", "Fam B"], "Plainorder": ["Fam C", "Fam D"]}
+    rows = []
+    k = 0
+    for order, fams in orders.items():
+        for fam in fams:
+            for _ in range(6):
+                name = HOSTILE_SPECIES if k == 0 else f"Species {k:02d}"
+                x = rng.uniform(math.log(1.0), math.log(1e4))
+                y = -3.0 + TRUE_EXPONENT * (x - math.log(100)) + rng.normal(0, 0.2)
+                rows.append({"species": name, "order": order, "family": fam, "log_size": x,
+                             "log_trait": y, "n_rows": 1})
+                k += 1
+    clean = pd.DataFrame(rows)
+    for col in ("within_sd_log_size", "within_sd_log_trait"):
+        clean[col] = np.nan
+    clean["sd_log_size"] = 0.05
+    clean["sd_log_trait"] = 0.05
+    clean["sd_source_size"] = "pooled"
+    clean["sd_source_trait"] = "pooled"
+    clean["source"] = "team A"
+    clean["flag_outlier"] = False
+    clean.loc[3, "flag_outlier"] = True
+    clean["flag_singleton_taxon"] = False
+    clean.to_csv(res / "clean.csv", index=False)
+
+    ledger = [
+        {"file": "data/test/demo.csv", "line": i + 2, "species": r["species"], "fate": "kept",
+         "merged_into": "", "reason": ""}
+        for i, r in enumerate(rows)
+    ]
+    ledger.append({"file": "data/test/demo.csv", "line": 26, "species": "Species 01",
+                   "fate": "merged", "merged_into": "Species 01",
+                   "reason": "replicate merged into the species mean"})
+    ledger.append({"file": "data/test/demo.csv", "line": 27, "species": "Ghost sp.",
+                   "fate": "dropped", "merged_into": "",
+                   "reason": "missing value in column 'mass' (cell 'NA')"})
+    ledger.append({"file": "data/test/demo.csv", "line": 28, "species": "Negative sp.",
+                   "fate": "dropped", "merged_into": "",
+                   "reason": "non-positive value in column 'rate': -1"})
+    pd.DataFrame(ledger).to_csv(res / "ledger.csv", index=False)
+
+    prepared = {
+        "dataset": "demo",
+        "canonical_units": {"size": "g", "trait": "W", "covariates": {}},
+        "reference_size": 100.0,
+        "log_reference_size": math.log(100.0),
+        "reference_size_rule": "config",
+        "levels": ["order", "family"],
+        "sources": [{"file": "data/test/demo.csv", "label": "team A", "sha256": "ab" * 32,
+                     "rows": len(ledger)}],
+        "conversions": [{"file": "data/test/demo.csv", "column": "rate", "from": "mW",
+                         "to": "W", "factor": 0.001, "rows": 5}],
+        "counts": {"input": len(ledger), "kept": len(rows), "merged": 1, "dropped": 2,
+                   "species": len(rows)},
+        "outliers": {"robust_z": 5.0, "removed": False,
+                     "rows": [{"file": "data/test/demo.csv", "line": 5,
+                               "species": rows[3]["species"], "note": "robust z 5.3 in trait"}],
+                     "species": [rows[3]["species"]]},
+        "singleton_taxa": {"order": [], "family": []},
+    }
+    (res / "prepared.json").write_text(json.dumps(prepared), encoding="utf-8")
+
+    clean_species = clean["species"].tolist()
+    for model in (PRIMARY, CURVED, BREAK):
+        idata = fake_fit(clean, model, rng)
+        out = res / model / "posterior.nc"
+        out.parent.mkdir(parents=True)
+        idata.to_netcdf(str(out))
+
+    checks = res / "checks"
+    checks.mkdir()
+    (checks / f"{PRIMARY}.json").write_text(json.dumps(check_payload(PRIMARY, "pass", rng)))
+    (checks / f"{CURVED}.json").write_text(json.dumps(check_payload(CURVED, "fail", rng)))
+    # no check file for the breakpoint model: the page must say so
+
+    hyp = []
+    probs = {"surface law": (0.6667, 0.08), "metabolic law": (0.75, 0.61),
+             "isometry": (1.0, 0.001)}
+    for name, (value, p) in probs.items():
+        hyp.append(_hyp_row(PRIMARY, "", "", name, value, "point", p))
+    hyp.append(_hyp_row(PRIMARY, "", "", "other", float("nan"), "other", 0.309))
+    hyp.append(_hyp_row(PRIMARY, "", "", "sub-linear", 1.0, "bound", 0.9987))
+    hyp.append(_hyp_row(PRIMARY, "order", HOSTILE_TAXON, "metabolic law", 0.75, "point", 0.4))
+    hyp.append(_hyp_row(CURVED, "", "", "metabolic law", 0.75, "point", 0.7123))
+    pd.DataFrame(hyp).to_csv(res / "hypotheses.csv", index=False)
+    comp = pd.DataFrame([
+        {"dataset": "demo", "model": PRIMARY, "rank": 0, "elpd_loo": -12.345, "se": 3.21,
+         "elpd_diff": 0.0, "dse": 0.0, "p_loo": 6.78, "stacking_weight": 0.83, "n_bad_k": 0,
+         "warning": False},
+        {"dataset": "demo", "model": CURVED, "rank": 1, "elpd_loo": -13.9, "se": 3.4,
+         "elpd_diff": 1.555, "dse": 0.91, "p_loo": 7.9, "stacking_weight": 0.17, "n_bad_k": 1,
+         "warning": True},
+    ])
+    comp.to_csv(res / "comparison.csv", index=False)
+    (res / "curvature_audit.json").write_text(json.dumps({
+        "conclusion": "Curvature does not explain the taxon differences: exponent SD "
+                      "between taxa stays 0.12 with shared curvature.",
+        "curvature_explains_taxa": False,
+        "exponent_sd_linear": 0.121, "exponent_sd_curved": 0.118,
+    }))
+    (res / "breakpoint.json").write_text(json.dumps({
+        "supported": False, "conclusion": "No break: the breakpoint model predicts worse.",
+        "elpd_diff": -2.5,
+    }))
+    assert len(clean_species) == 24
+    return config
+
+
+def fake_fit(clean: pd.DataFrame, model: str, rng: np.random.Generator) -> az.InferenceData:
+    """Known-truth InferenceData with the contract's variable names, dims and attributes."""
+    chains, draws = 2, 200
+    n = len(clean)
+    orders = sorted(clean["order"].unique())
+    families = sorted(clean["family"].unique())
+    shape = (chains, draws)
+    post = {
+        "intercept": rng.normal(-3.0, 0.05, shape),
+        "exponent": rng.normal(TRUE_EXPONENT, 0.03, shape),
+        "sigma": np.abs(rng.normal(0.2, 0.02, shape)),
+        "exponent_sd__order": np.abs(rng.normal(0.1, 0.02, shape)),
+        "taxon_exponent__order": rng.normal(TRUE_EXPONENT, 0.05, (*shape, len(orders))),
+        "taxon_intercept__order": rng.normal(-3.0, 0.1, (*shape, len(orders))),
+        "taxon_exponent__family": rng.normal(TRUE_EXPONENT, 0.06, (*shape, len(families))),
+        "taxon_intercept__family": rng.normal(-3.0, 0.1, (*shape, len(families))),
+    }
+    constant = {"log_size_obs": clean["log_size"].to_numpy(),
+                "log_size_ref": np.array(math.log(100.0))}
+    if model == CURVED:
+        post["curvature"] = rng.normal(0.02, 0.005, shape)
+    if model == BREAK:
+        post["break_log_size"] = rng.normal(math.log(300.0), 0.3, shape)
+        post["exponent_above"] = rng.normal(0.9, 0.05, shape)
+        constant["hinge_width"] = np.array(0.1)
+        for key in list(post):
+            if key.startswith("taxon_exponent") or key == "exponent_sd__order":
+                del post[key]
+    mu = clean["log_trait"].to_numpy()
+    dims = {"taxon_exponent__order": ["order"], "taxon_intercept__order": ["order"],
+            "taxon_exponent__family": ["family"], "taxon_intercept__family": ["family"],
+            "trait": ["species"], "log_size_obs": ["species"]}
+    spec = {
+        "name": model, "description": "test spec",
+        "taxa": {"levels": "all", "vary": ["intercept", "exponent"], "parameterisation": "auto"},
+        "size_error": "replicates", "trait_error": "replicates",
+        "curvature": "shared" if model == CURVED else "none",
+        "breakpoint": "one" if model == BREAK else "none",
+    }
+    attrs = {
+        "allolaw_version": "0.1.0", "dataset": "demo", "model": model,
+        "spec": json.dumps(spec), "backend": "pymc", "seed": 1234,
+        "sampler": json.dumps({"chains": 2, "draws": 200, "tune": 200, "target_accept": 0.9}),
+        "data_sha256": "cd" * 32, "versions": json.dumps({"pymc": "5.28.5"}),
+        "log_reference_size": math.log(100.0), "refit": "false", "wall_seconds": 1.5,
+    }
+    idata = az.from_dict(
+        posterior=post,
+        posterior_predictive={"trait": rng.normal(mu, 0.2, (*shape, n))},
+        log_likelihood={"trait": stats.norm.logpdf(mu, mu, 0.2)[None, None, :]
+                        + np.zeros((*shape, n))},
+        observed_data={"trait": mu},
+        constant_data=constant,
+        coords={"species": clean["species"].tolist(), "order": orders, "family": families},
+        dims=dims,
+        attrs=attrs,
+    )
+    # Scalars of constant_data are 0-d in a real fit (pm.Data); from_dict gives them a dim.
+    scalars = {k: float(np.asarray(v)) for k, v in constant.items() if np.ndim(v) == 0}
+    cd = idata.constant_data.drop_vars(list(scalars))
+    cd = cd.drop_dims([d for d in cd.dims if d != "species"])
+    idata.constant_data = cd.assign({k: ((), v) for k, v in scalars.items()})
+    return idata
+
+
+def check_payload(model: str, verdict: str, rng: np.random.Generator) -> dict:
+    rhat = 1.004 if verdict == "pass" else 1.083
+    grid = np.linspace(-7, 1, 30)
+    dens = stats.norm.pdf(grid, -3, 1.5)
+    pit = rng.uniform(size=24)
+    counts, edges = np.histogram(pit, bins=10, range=(0, 1))
+    return {
+        "dataset": "demo", "model": model, "verdict": verdict,
+        "diagnostics": [
+            {"name": "r_hat", "value": rhat, "threshold": 1.01,
+             "status": "pass" if verdict == "pass" else "fail",
+             "message": f"worst R-hat {rhat} (exponent)"},
+            {"name": "ess_bulk", "value": 812.0, "threshold": 400, "status": "pass",
+             "message": "ok"},
+            {"name": "divergences", "value": 0, "threshold": 0, "status": "pass",
+             "message": "none"},
+        ],
+        "findings": ([] if verdict == "pass"
+                     else ["R-hat of exponent is 1.083: the chains disagree."]),
+        "refit": None,
+        "ppc": {
+            "loo_pit": {"values": pit.tolist(),
+                        "histogram": {"edges": edges.tolist(), "counts": counts.tolist()},
+                        "ks_distance": 0.12, "ks_pvalue": 0.8, "share_outside_05_95": 0.08},
+            "test_statistics": [{"statistic": "sd", "observed": 1.9, "q05": 1.6, "q50": 1.9,
+                                 "q95": 2.2, "p_value": 0.48}],
+            "density_overlay": {"grid": grid.tolist(), "observed": dens.tolist(),
+                                "predictive_q05": (0.8 * dens).tolist(),
+                                "predictive_q50": dens.tolist(),
+                                "predictive_q95": (1.2 * dens).tolist(), "n_draws": 100},
+            "prior_predictive": {"quantiles": {"q05": -9, "q50": -3, "q95": 3},
+                                 "observed_min": -6, "observed_max": 0,
+                                 "share_within_observed_range": 0.41,
+                                 "share_beyond_10_log_units": 0.01},
+        },
+    }
+
+
+def _hyp_row(model, level, taxon, hypothesis, value, kind, prob):
+    return {"dataset": "demo", "model": model, "parameter": "exponent", "level": level,
+            "taxon": taxon, "hypothesis": hypothesis, "value": value, "kind": kind,
+            "prior_weight": 1.0, "log_bf": math.log(prob / (1 - prob)) if kind == "point"
+            else float("nan"), "posterior_prob": prob, "interval_prob": min(prob + 0.05, 1.0),
+            "nearest_prob": prob, "posterior_prob_prior_half": prob * 0.9,
+            "posterior_prob_prior_double": prob * 1.05, "conclusion_changes": False,
+            "method": "Savage-Dickey (normal prior, KDE posterior density)"}
+
+
+@pytest.fixture(scope="module")
+def rendered(tmp_path_factory):
+    root = tmp_path_factory.mktemp("report")
+    config = build_results(root)
+    path = report.render_dataset_report(config, "demo")
+    return config, path, path.read_text(encoding="utf-8")
+
+
+class _Tables(HTMLParser):
+    """Cells of each <table id=...> as text, row by row (stdlib parser, not our code)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tables: dict[str, list[list[str]]] = {}
+        self._id: str | None = None
+        self._cell: list[str] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "table" and a.get("id"):
+            self._id = a["id"]
+            self.tables[self._id] = []
+        elif tag == "tr" and self._id:
+            self.tables[self._id].append([])
+        elif tag in ("td", "th") and self._id:
+            self._cell = []
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._id and self._cell is not None:
+            self.tables[self._id][-1].append("".join(self._cell).strip())
+            self._cell = None
+        elif tag == "table":
+            self._id = None
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell.append(data)
+
+
+def _tables(html: str) -> dict[str, list[list[str]]]:
+    parser = _Tables()
+    parser.feed(html)
+    return parser.tables
+
+
+def _close(cell: str, value: float) -> bool:
+    """The shown number equals ``value`` to the precision it is shown with."""
+    decimals = len(cell.split(".")[1]) if "." in cell else 0
+    return abs(float(cell) - value) <= 0.5 * 10**-decimals + 1e-12
+
+
+# --- tests ----------------------------------------------------------------------------------
+def test_answer_comes_first_with_primary_exponent_and_its_90_percent_interval(rendered):
+    config, _, html = rendered
+    idata = az.from_netcdf(Path(config["results_dir"]) / "demo" / PRIMARY / "posterior.nc")
+    draws = idata.posterior["exponent"].values.ravel()
+    # 5%, 50%, 95% quantiles by numpy (linear interpolation, Hyndman & Fan 1996 type 7).
+    q05, q50, q95 = np.quantile(draws, [0.05, 0.5, 0.95])
+    answer = html[html.index('id="answer"'):html.index('id="data"')]
+    assert f"{q50:.3f}" in answer
+    assert f"90% interval {q05:.3f} to {q95:.3f}" in answer
+    assert "reference size 100 g" in answer
+    assert html.index('id="answer"') < html.index('id="data"') < html.index('id="checks"')
+
+
+def test_headline_named_exponent_and_tables_equal_hypotheses_and_comparison_csv(rendered):
+    config, _, html = rendered
+    res = Path(config["results_dir"]) / "demo"
+    hyp = pd.read_csv(res / "hypotheses.csv", keep_default_na=False)
+    comp = pd.read_csv(res / "comparison.csv")
+    pop = hyp[(hyp["model"] == PRIMARY) & (hyp["taxon"] == "") & (hyp["kind"] == "point")]
+    best = pop.loc[pop["posterior_prob"].idxmax()]
+    named = unescape(re.search(r'id="headline-named">(.*?)</li>', html, re.S).group(1))
+    assert best["hypothesis"] in named
+    shown = re.search(r"posterior probability <strong>([0-9.]+)</strong>", named).group(1)
+    assert _close(shown, best["posterior_prob"])
+
+    tables = _tables(html)
+    head, *body = tables["table-hypotheses"]
+    assert len(body) == len(hyp)
+    for row, (_, expected) in zip(body, hyp.iterrows(), strict=True):
+        cells = dict(zip(head, row, strict=True))
+        assert unescape(cells["taxon"]) in (expected["taxon"], "–")
+        for col in ("posterior_prob", "interval_prob", "posterior_prob_prior_half",
+                    "posterior_prob_prior_double"):
+            assert _close(cells[col], float(expected[col])), (col, cells[col], expected[col])
+    head, *body = tables["table-comparison"]
+    assert [r[head.index("model")] for r in body] == comp["model"].tolist()
+    for row, (_, expected) in zip(body, comp.iterrows(), strict=True):
+        cells = dict(zip(head, row, strict=True))
+        for col in ("elpd_loo", "se", "elpd_diff", "dse", "p_loo", "stacking_weight"):
+            assert _close(cells[col], float(expected[col])), (col, cells[col], expected[col])
+    assert "not</strong> model probabilities" in html
+
+
+def test_hostile_species_and_taxon_names_are_escaped(rendered):
+    _, _, html = rendered
+    assert HOSTILE_SPECIES not in html
+    assert "<script" not in html.lower()
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert HOSTILE_TAXON not in html
+    assert "Rock &amp; &#34;Roll&#34; &#39;n&#39;" in html or (
+        "Rock &amp; &quot;Roll&quot; &#x27;n&#x27;" in html)
+    assert "<b>bold</b>" not in html  # the dataset title is text, not markup
+
+
+def test_failed_check_is_shown_red_and_explicit_in_the_answer(rendered):
+    _, _, html = rendered
+    answer = html[html.index('id="answer"'):html.index('id="data"')]
+    assert f'class="alert fail" id="failed-{CURVED}"' in answer
+    assert f"Failed check: model {CURVED}" in answer
+    assert f"Not checked</strong> (no check file): {BREAK}" in answer
+    checks = html[html.index('id="checks"'):html.index('id="pictures"')]
+    assert re.search(r'<tr class="row-fail"><td>r_hat</td><td class="num">1.083</td>', checks)
+    assert "R-hat of exponent is 1.083" in checks
+
+
+def test_ledger_counts_and_dropped_rows_match_ledger_csv(rendered):
+    config, _, html = rendered
+    ledger = pd.read_csv(Path(config["results_dir"]) / "demo" / "ledger.csv")
+    tables = _tables(html)
+    counts = tables["table-ledger-counts"][1]
+    fates = ledger["fate"].value_counts()
+    assert counts == [str(len(ledger)), str(fates["kept"]), str(fates["merged"]),
+                      str(fates["dropped"])]
+    dropped = ledger[ledger["fate"] == "dropped"]
+    body = tables["table-dropped"][1:]
+    assert [int(r[1]) for r in body] == dropped["line"].tolist()
+    assert [unescape(r[3]) for r in body] == dropped["reason"].tolist()
+    assert "0.001" in html  # the unit conversion factor mW → W
+
+
+def test_species_and_taxa_counts_match_clean_csv(rendered):
+    config, _, html = rendered
+    clean = pd.read_csv(Path(config["results_dir"]) / "demo" / "clean.csv")
+    text = unescape(re.sub(r"<[^>]+>", "", html))
+    assert f"{len(clean)} species, {clean['order'].nunique()} taxa at level order, " \
+           f"{clean['family'].nunique()} taxa at level family" in text
+    # one hover title per species in the scatter plot
+    scatter = html[html.index('id="fig-scatter"'):]
+    scatter = scatter[:scatter.index("</figure>")]
+    assert scatter.count('<circle class="pt"') == len(clean)
+
+
+def test_missing_inputs_are_listed_on_the_page(tmp_path):
+    config = build_results(tmp_path)
+    res = Path(config["results_dir"]) / "demo"
+    (res / "hypotheses.csv").unlink()
+    (res / "breakpoint.json").unlink()
+    (res / CURVED / "posterior.nc").unlink()
+    html = report.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    missing = html[html.index('id="missing-inputs"'):]
+    missing = missing[:missing.index("</div>")]
+    assert "hypotheses.csv is missing" in missing
+    assert "breakpoint.json is missing" in missing
+    assert f"The fit of model &#39;{CURVED}&#39; is missing" in missing
+    assert "No named-exponent probabilities" in html
+
+
+def test_page_is_self_contained_and_small(rendered):
+    _, path, html = rendered
+    lowered = html.lower()
+    assert "<script" not in lowered
+    assert not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", lowered)
+    assert "url(http" not in lowered
+    assert "@import" not in lowered
+    assert "@media print" in html
+    assert path.stat().st_size < 5_000_000
+
+
+def test_methods_paragraph_and_reproducibility_footer(rendered):
+    config, _, html = rendered
+    methods = html[html.index('id="methods"'):html.index('id="reproducibility"')]
+    for ref in ("Dickey, J. M. (1971)", "Wagenmakers", "Vehtari, A., Gelman, A., Gabry, J. "
+                "(2017)", "improved R-hat", "Yao, Y.", "Okabe"):
+        assert ref in methods, ref
+    assert "2 chains of 200 draws after 200 warm-up draws" in methods
+    footer = html[html.index('id="reproducibility"'):]
+    assert config_sha256(config) in footer
+    assert "ab" * 32 in footer  # source file hash from prepared.json
+    assert "snakemake --cores 2 reports/demo.html" in footer
+    assert "dose" in footer
+    assert "regulatory guidance" in footer
+    assert re.search(r"this page \d+\.\d s", footer)
+
+
+def test_break_and_local_exponent_figures_appear_for_the_models_that_have_them(rendered):
+    _, _, html = rendered
+    assert f'id="fig-break-{BREAK}"' in html
+    assert f'id="fig-local-{CURVED}"' in html
+    assert f'id="fig-local-{PRIMARY}"' not in html
+    assert 'id="fig-forest-order"' in html
+    assert 'id="fig-forest-family"' in html
+
+
+def test_local_exponent_of_a_quadratic_law_is_its_derivative(rendered):
+    # d/dx (a + b·dx + c·dx²) = b + 2c·dx (closed form); the figure differentiates numerically.
+    config, _, _ = rendered
+    idata = az.from_netcdf(Path(config["results_dir"]) / "demo" / CURVED / "posterior.nc")
+    grid = np.linspace(0.0, 9.0, 60)
+    slope = report._local_exponent(idata, grid)
+    law = slope
+    b = idata.posterior["exponent"].values.ravel()
+    c = idata.posterior["curvature"].values.ravel()
+    step = np.linspace(0, b.size - 1, law.shape[0]).astype(int) if b.size > law.shape[0] else (
+        slice(None))
+    expected = b[step, None] + 2 * c[step, None] * (grid[None, :] - math.log(100.0))
+    np.testing.assert_allclose(slope, expected, atol=1e-9)
+
+
+def test_log_axes_place_points_linearly_in_log10(rendered):
+    xs = np.array([0.3, 2.0, 50.0, 1e3, 7e4])
+    ys = xs**0.75
+    svg = plots.scatter_law_svg(
+        [plots.Series(xs, ys, [f"p{i}" for i in range(5)], label="t", colour="#000")], [],
+        x_label="x (g)", y_label="y (W)")
+    pts = re.findall(r'<circle class="pt" cx="([0-9.]+)" cy="([0-9.]+)"', svg)
+    cx, cy = (np.array([float(p[i]) for p in pts]) for i in (0, 1))
+    # pixels are affine in log10: a straight-line fit leaves under 0.1 px (rounding to 0.1 px)
+    for pix, val in ((cx, xs), (cy, ys)):
+        fit = np.polyfit(np.log10(val), pix, 1)
+        assert np.max(np.abs(np.polyval(fit, np.log10(val)) - pix)) < 0.1
+    # a power law with exponent 0.75 is a straight line of slope 0.75 on equal-decade axes
+    slope_px = np.polyfit(np.log10(xs), cy, 1)[0] / np.polyfit(np.log10(xs), cx, 1)[0]
+    assert slope_px < 0
+
+
+def test_index_shows_each_dataset_worst_verdict_and_benchmark_totals(rendered, tmp_path):
+    config, _, _ = rendered
+    logs = tmp_path / "logs"
+    bench = logs / "benchmarks" / "demo"
+    bench.mkdir(parents=True)
+    # Snakemake benchmark layout (tab-separated: s, h:m:s, max_rss, ... , mean_load, cpu_time)
+    header = "s\th:m:s\tmax_rss\tmax_vms\tmax_uss\tmax_pss\tio_in\tio_out\tmean_load\tcpu_time\n"
+    (bench / "fit_taxa_errors.tsv").write_text(
+        header + "12.5\t0:00:12\t512.3\t900\t500\t505\t1\t2\t95.0\t11.9\n")
+    (bench / "prepare.tsv").write_text(header + "0.75\t0:00:00\t80.1\t100\t70\t75\t0\t0\t50\t0.4\n")
+    path = report.render_index(config, logs_dir=logs)
+    html = path.read_text(encoding="utf-8")
+    tables = _tables(html)
+    _, row = tables["table-index"]
+    assert "fail" in row[2]  # worst of pass / fail / missing check verdicts
+    assert "demo.html" in html
+    body = tables["table-benchmarks"][1:]
+    assert sorted(r[0] for r in body) == ["demo/fit_taxa_errors", "demo/prepare"]
+    assert "2 jobs, 13.2 s of wall time" in html  # 12.5 + 0.75 = 13.25 → 13.2 (round half even)
+    assert "largest peak memory 512.3 MB" in html
+    frame = report.read_benchmarks(logs)
+    assert frame["s"].sum() == pytest.approx(13.25)
+
+
+def test_index_warns_when_no_benchmark_files_exist(rendered, tmp_path):
+    config, _, _ = rendered
+    html = report.render_index(config, logs_dir=tmp_path / "nothing").read_text(encoding="utf-8")
+    assert 'id="no-benchmarks"' in html
