@@ -372,10 +372,11 @@ def aggregate_species(
             "species": int(multi.sum()),
             "dof": int(dof),
         }
-        given_all = groups[f"sd_log_{axis}_row"].apply(lambda s: bool(s.notna().all()))
-        given_sd = groups[f"sd_log_{axis}_row"].apply(
-            lambda s: float(np.sqrt((s**2).sum()) / len(s))
-        )
+        row_sd = rows[f"sd_log_{axis}_row"]
+        given_all = groups[f"sd_log_{axis}_row"].count() == clean["n_rows"]
+        given_sd = np.sqrt((row_sd**2).groupby(rows["species"], sort=False).sum()) / clean[
+            "n_rows"
+        ]
         replicate_sd = clean[f"within_sd_{col}"] / np.sqrt(clean["n_rows"])
         sd = np.where(given_all, given_sd, np.where(multi, replicate_sd, pooled_sd))
         src = np.where(
@@ -387,7 +388,7 @@ def aggregate_species(
         clean[f"sd_source_{axis}"] = src
     for name in covariates:
         clean[f"cov_{name}"] = groups[f"cov_{name}"].mean()
-    clean["source"] = groups["source"].apply(lambda s: ";".join(sorted(set(s))))
+    clean["source"] = groups["source"].unique().map(lambda labels: ";".join(sorted(labels)))
     clean = clean.reset_index()
     return clean, pooled
 
@@ -665,12 +666,16 @@ def _parse_rows(
                 if unit.lower() in MISSING_STRINGS:
                     reason = f"missing unit in column {unit_column!r} for {column!r}"
                     break
-                where = format_location(file, line, unit_column, unit)
             else:
+                unit_column = None
                 unit = units[unit_key]
-                where = f"{file}: units.{unit_key} of column {column!r}"
             conv = cache.get((key, unit))
             if conv is None:
+                where = (
+                    format_location(file, line, unit_column, unit)
+                    if unit_column
+                    else f"{file}: units.{unit_key} of column {column!r}"
+                )
                 conv = conversion(unit, canonical, quantity, energy_per_ml_o2_joule=energy,
                                   where=where)
                 if key in ("size_sd", "trait_sd") and conv.offset != 0.0:
@@ -684,7 +689,7 @@ def _parse_rows(
                     "rows": 0,
                 }
             conversions[(file, column, unit, canonical)]["rows"] += 1
-            values[key] = float(conv.apply(number))
+            values[key] = number * conv.factor + conv.offset
         if not reason:
             key_cells = tuple(c.strip() for c in cells)
             first = seen_lines.get(key_cells)
