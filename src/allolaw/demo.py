@@ -263,8 +263,10 @@ def _tree_biomass(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
     log_ref = math.log(reference)
     intercept = math.log(250.0)  # kg at 20 cm
     sigma = 0.08
-    tree_sd_log_diameter = 0.25
-    trait_error_sd = 0.12
+    # Rows of a species are repeated measurements (several plots) of the species' typical tree:
+    # the spread within a species is measurement error, as the species-mean intake assumes.
+    size_error_sd = 0.05
+    trait_error_sd = 0.10
     centres = np.linspace(math.log(5.0), math.log(70.0), len(genera))
     genus_shift = _centred(rng.normal(0.0, 0.05, len(genera)))
     rows: list[list[str]] = []
@@ -274,11 +276,11 @@ def _tree_biomass(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
             name = f"{genus} {epithets.pop()}"
             centre = centres[k] + rng.normal(0.0, 0.25)
             dev = rng.normal(0.0, sigma)
+            dx = centre - log_ref
+            true_log_mass = intercept + genus_shift[k] + exponent * dx + curvature * dx**2 + dev
             for _ in range(int(rng.integers(3, 9))):
-                x = centre + rng.normal(0.0, tree_sd_log_diameter)
-                dx = x - log_ref
-                log_mass = (intercept + genus_shift[k] + exponent * dx + curvature * dx**2 + dev
-                            + rng.normal(0.0, trait_error_sd))
+                x = centre + rng.normal(0.0, size_error_sd)
+                log_mass = true_log_mass + rng.normal(0.0, trait_error_sd)
                 rows.append([name, genus, _fmt(math.exp(x), 3), _fmt(math.exp(log_mass))])
     file = "tree_biomass.csv"
     blemishes = []
@@ -296,8 +298,7 @@ def _tree_biomass(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
         "break_log_size": None,
         "exponent_above": None,
         "sigma": sigma,
-        "size_error_sd": 0.0,
-        "tree_sd_log_diameter": tree_sd_log_diameter,
+        "size_error_sd": size_error_sd,
         "trait_error_sd": trait_error_sd,
         "levels": ["genus"],
         "taxon_exponent": {"genus": dict.fromkeys(genera, exponent)},
@@ -310,8 +311,8 @@ def _tree_biomass(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
         "blemishes": blemishes,
         "notes": (
             "ln kg = intercept + genus shift + exponent·d + curvature·d² + species dev "
-            "N(0, sigma) + tree noise N(0, trait_error_sd), d = ln cm − ln 20; diameters are "
-            "exact; trees of one species differ in size (SD tree_sd_log_diameter on ln cm). "
+            "N(0, sigma), d = ln cm − ln 20 of the species' typical tree; each row is one "
+            "measurement of it: ln diameter + N(0, size_error_sd), ln mass + N(0, trait_error_sd). "
             "Genera sit at increasing diameter ranges, so local slopes differ by genus only "
             "through the curvature."
         ),
