@@ -26,6 +26,7 @@ from allolaw.config import config_sha256, validate_config
 
 REPO = Path(__file__).resolve().parents[1]
 HOSTILE_SPECIES = "<script>alert(1)</script>"
+HOSTILE_IMAGE = "<img src=x onerror=window.__allolaw_xss=1>"
 HOSTILE_TAXON = "Rock & \"Roll\" 'n'"
 PRIMARY = "taxa_errors"
 CURVED = "taxa_errors_curved"
@@ -69,7 +70,7 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
     for order, fams in orders.items():
         for fam in fams:
             for _ in range(6):
-                name = HOSTILE_SPECIES if k == 0 else f"Species {k:02d}"
+                name = {0: HOSTILE_SPECIES, 1: HOSTILE_IMAGE}.get(k, f"Species {k:02d}")
                 x = rng.uniform(math.log(1.0), math.log(1e4))
                 y = -3.0 + TRUE_EXPONENT * (x - math.log(100)) + rng.normal(0, 0.2)
                 rows.append({"species": name, "order": order, "family": fam, "log_size": x,
@@ -93,8 +94,8 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
          "merged_into": "", "reason": ""}
         for i, r in enumerate(rows)
     ]
-    ledger.append({"file": "data/test/demo.csv", "line": 26, "species": "Species 01",
-                   "fate": "merged", "merged_into": "Species 01",
+    ledger.append({"file": "data/test/demo.csv", "line": 26, "species": "Species 02",
+                   "fate": "merged", "merged_into": "Species 02",
                    "reason": "replicate merged into the species mean"})
     ledger.append({"file": "data/test/demo.csv", "line": 27, "species": "Ghost sp.",
                    "fate": "dropped", "merged_into": "",
@@ -384,6 +385,8 @@ def test_hostile_species_and_taxon_names_are_escaped(rendered):
     assert HOSTILE_SPECIES not in html
     assert "<script" not in html.lower()
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert HOSTILE_IMAGE not in html
+    assert "<img" not in html.lower()
     assert HOSTILE_TAXON not in html
     assert "Rock &amp; &#34;Roll&#34; &#39;n&#39;" in html or (
         "Rock &amp; &quot;Roll&quot; &#x27;n&#x27;" in html)

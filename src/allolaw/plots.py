@@ -104,7 +104,7 @@ def scatter_law_svg(
     ys = [v for s in series for v in s.y] + [v for b in bands for v in b.mid]
     ys += _band_edges(bands)
     ax = _Axes(width, height, _log_range(xs), _log_range(ys), log_x=True, log_y=True,
-               right=150)
+               right=190)
     parts = [ax.frame(x_label, y_label, title)]
     parts.append(f'<g clip-path="url(#{ax.clip_id})">')
     for band in bands:
@@ -200,7 +200,7 @@ def line_band_svg(
     ys = [v for b in bands for v in b.mid] + [m[1] for m in marks_y]
     ys += _band_edges(bands)
     x_range = _log_range(xs) if log_x else _lin_range(xs, pad=0.0)
-    ax = _Axes(width, height, x_range, _lin_range(ys), log_x=log_x, log_y=False, right=150)
+    ax = _Axes(width, height, x_range, _lin_range(ys), log_x=log_x, log_y=False, right=190)
     parts = [ax.frame(x_label, y_label, title)]
     parts.append(f'<g clip-path="url(#{ax.clip_id})">')
     for band in bands:
@@ -442,7 +442,7 @@ class _Axes:
                         f'stroke="{colour}" stroke-width="2"{dash}/>')
             out.append(
                 f'{mark}<text x="{x + 20}" y="{y}" font-size="11" fill="{_INK}">'
-                f"{escape(_truncate(label, 22))}</text>"
+                f"{escape(_truncate(label, 30))}</text>"
             )
             y += 16
         if len(items) > 18:

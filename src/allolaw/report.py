@@ -250,13 +250,16 @@ def summarise_dataset(
 
     fits = {}
     model_info = []
+    trait_unit = ((prepared or {}).get("canonical_units") or {}).get("trait") or ds["trait"]["unit"]
     for name in models:
         idata = _read_posterior(paths.posterior_path(results, dataset, name), missing, name)
         check = _read_json(paths.check_path(results, dataset, name), missing,
                            f"checks/{name}.json", "run `allolaw check`")
         if idata is not None:
             fits[name] = idata
-        model_info.append(_model_section(name, idata, check, primary=name == primary))
+        model_info.append(
+            _model_section(name, idata, check, primary=name == primary, trait_unit=trait_unit)
+        )
 
     levels = list((prepared or {}).get("levels") or _config_levels(ds))
     units = _units(ds, prepared)
@@ -440,7 +443,7 @@ def _data_section(
 
 
 def _model_section(
-    name: str, idata: Any, check: dict[str, Any] | None, *, primary: bool
+    name: str, idata: Any, check: dict[str, Any] | None, *, primary: bool, trait_unit: str
 ) -> dict[str, Any]:
     out: dict[str, Any] = {"name": name, "primary": primary, "fitted": idata is not None}
     attrs = dict(idata.attrs) if idata is not None else {}
@@ -464,7 +467,7 @@ def _model_section(
         out["loo_pit"] = ppc.get("loo_pit")
         out["prior_predictive"] = ppc.get("prior_predictive")
         out["ppc_note"] = ppc.get("note")
-        out["ppc_figs"] = _ppc_figures(ppc)
+        out["ppc_figs"] = _ppc_figures(ppc, trait_unit)
     else:
         out["ppc_stats"], out["loo_pit"], out["prior_predictive"] = [], None, None
         out["ppc_note"], out["ppc_figs"] = None, {}
@@ -511,13 +514,13 @@ def _parameter_summary(idata: Any) -> list[dict[str, Any]]:
     return rows
 
 
-def _ppc_figures(ppc: dict[str, Any]) -> dict[str, Markup]:
+def _ppc_figures(ppc: dict[str, Any], trait_unit: str) -> dict[str, Markup]:
     figs: dict[str, Markup] = {}
     dens = ppc.get("density_overlay")
     if dens and dens.get("grid"):
         figs["overlay"] = _svg(plots.density_overlay_svg(
             dens["grid"], dens["observed"], dens["predictive_q05"], dens["predictive_q50"],
-            dens["predictive_q95"], x_label="natural log of the trait (canonical unit)",
+            dens["predictive_q95"], x_label=f"natural log of the trait in {_unit_text(trait_unit)}",
             title="posterior predictive density",
         ))
     pit = ppc.get("loo_pit")
@@ -567,7 +570,11 @@ def _json_section(obj: Any, *, kind: str) -> dict[str, Any] | None:
         ):
             answer = val
             break
-    numbers = [(k, v) for k, v in _flatten(obj) if not isinstance(v, str) or len(v) < 200]
+    shown = {"conclusion", "summary", "finding", "findings", "statement", "message", "note"}
+    numbers = [
+        (k, v) for k, v in _flatten({k: v for k, v in obj.items() if k not in shown})
+        if not isinstance(v, str) or len(v) < 200
+    ]
     return {"text": text, "answer": answer, "numbers": numbers}
 
 
@@ -662,6 +669,12 @@ def _methods(
     hconf = dict(config.get("hypotheses", {}))
     hconf.update(dataset_config(config, dataset).get("hypotheses", {}))
     described = [(m["name"], m["description"]) for m in models if m["description"]]
+    others = [
+        (m["name"], str((m["spec"] or {}).get("description", "")).strip().rstrip(".")
+         or "no description")
+        for m in models
+        if not m["primary"] and m["fitted"]
+    ]
     sbc_run = any("sbc" in str(k).lower() for m in models for k in (m["check"] or {}))
     refs = ["nuts", "rhat", "loo", "pit", "savage_dickey", "wagenmakers", "stacking"]
     if sbc_run:
@@ -676,6 +689,7 @@ def _methods(
         "delta": hconf.get("interval_halfwidth"),
         "scale_factors": hconf.get("prior_scale_factors", []),
         "described": described,
+        "others": others,
         "sbc_run": sbc_run,
         "references": [_REFERENCES[r] for r in refs],
     }
@@ -803,7 +817,7 @@ def _figures(
                                                                       "1 2"][i % 4]))
     figs["scatter"] = _svg(plots.scatter_law_svg(
         series, bands, x_label=units["x_axis"], y_label=units["y_axis"], reference_lines=refs,
-        title="",
+        title="", width=940, height=540,
     ))
     figs["scatter_notes"] = (
         "Points: species means, coloured by " + (colour_level or "species")
@@ -850,8 +864,8 @@ def _figures(
                 ))})
         if "break_log_size" in fit.posterior:
             draws = np.asarray(fit.posterior["break_log_size"].values, dtype=float).reshape(-1)
-            counts, edges = np.histogram(draws, bins=40, density=True)
-            centres = 0.5 * (edges[1:] + edges[:-1])
+            centres = np.linspace(draws.min(), draws.max(), 120)
+            counts = _density(draws, centres)
             q = np.quantile(draws, [0.05, 0.5, 0.95])
             figs["breaks"].append({
                 "model": name,
@@ -865,6 +879,15 @@ def _figures(
                 )),
             })
     return figs
+
+
+def _density(draws: np.ndarray, grid: np.ndarray) -> np.ndarray:
+    """Gaussian kernel density of ``draws`` on ``grid`` (Scott's bandwidth, scipy)."""
+    from scipy import stats
+
+    if np.ptp(draws) == 0:
+        return np.zeros_like(grid)
+    return stats.gaussian_kde(draws)(grid)
 
 
 def _named_exponents(config: dict[str, Any], dataset: str) -> list[tuple[str, float]]:
