@@ -144,6 +144,8 @@ def test_compare_dataset_writes_every_output_and_says_what_does_not_apply(tmp_pa
 
 
 # --- curvature audit on simulated data with known truth (small real fits) ---------------------
+# Four small hierarchical fits take 2–5 minutes on this shared machine, so they are marked slow
+# (run with `pytest -m slow tests/test_comparison.py`).
 
 
 def _simulate(curved: bool, seed: int) -> pd.DataFrame:
@@ -188,6 +190,7 @@ def _fit(data, curvature, seed):
                          idata_kwargs={"log_likelihood": True}, compute_convergence_checks=False)
 
 
+@pytest.mark.slow
 @pytest.mark.mcmc
 def test_curvature_audit_attributes_taxon_spread_to_one_curved_law():
     # Known truth: one quadratic law, no taxon exponent differences; taxa see different
@@ -200,6 +203,7 @@ def test_curvature_audit_attributes_taxon_spread_to_one_curved_law():
     assert audit["verdict"].startswith("Most")
 
 
+@pytest.mark.slow
 @pytest.mark.mcmc
 def test_curvature_audit_keeps_real_taxon_differences():
     # Known truth: straight laws with taxon exponents SD 0.2, no curvature.

@@ -453,10 +453,12 @@ def _curvature_verdict(audit: dict[str, Any], names: dict[str, str]) -> str:
                 "differ in their own right")
     else:
         head = "Curvature explains part of the spread of taxon exponents"
+    change = (f"lowers the mean between-taxon exponent variance by {100 * share:.0f}%"
+              if share >= 0 else
+              f"raises the mean between-taxon exponent variance by {-100 * share:.0f}%")
     return (
-        f"{head}. Adding a shared curvature term to '{names['linear']}' lowers the mean "
-        f"between-taxon exponent variance by {100 * share:.0f}% (share explained "
-        f"{share:.2f}); the curvature is {curv['median']:.3f} (90% interval "
+        f"{head}. Adding a shared curvature term to '{names['linear']}' {change} (share "
+        f"explained {share:.2f}); the curvature is {curv['median']:.3f} (90% interval "
         f"{curv['q05']:.3f} to {curv['q95']:.3f}), P(curvature > 0) = {p_pos:.2f}; "
         f"{loo_text}."
     )
