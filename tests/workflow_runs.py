@@ -100,10 +100,11 @@ def snakemake(work: Path, *args: str, timeout: float,
     return subprocess.CompletedProcess(proc.args, proc.returncode, text, "")
 
 
-def run_batch(work: Path, *args: str, timeout: float = 1800,
+def run_batch(work: Path, *args: str, timeout: float = 1800, cores: str | None = "2",
               wrapper: tuple[str, ...] = ()) -> subprocess.CompletedProcess:
     """Run the whole small batch with the quick sampler settings."""
-    return snakemake(work, *args, "--cores", "2", "--configfile", QUICK, timeout=timeout,
+    extra = ["--cores", cores] if cores else []
+    return snakemake(work, *args, *extra, "--configfile", QUICK, timeout=timeout,
                      wrapper=wrapper)
 
 
