@@ -158,15 +158,42 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
          "warning": True},
     ])
     comp.to_csv(res / "comparison.csv", index=False)
+    # Layouts as allolaw.comparison writes them (audit_curvature, summarise_breakpoint).
     (res / "curvature_audit.json").write_text(json.dumps({
-        "conclusion": "Curvature does not explain the taxon differences: exponent SD "
-                      "between taxa stays 0.12 with shared curvature.",
-        "curvature_explains_taxa": False,
-        "exponent_sd_linear": 0.121, "exponent_sd_curved": 0.118,
+        "applicable": True,
+        "models": {"linear": PRIMARY, "curved": CURVED},
+        "share_explained_by_curvature": {"by_level": {"order": 0.04, "family": 0.02},
+                                         "all_levels": 0.031},
+        "curvature": {"mean": 0.021, "sd": 0.005, "median": 0.021, "q05": 0.012,
+                      "q95": 0.029},
+        "p_curvature_positive": 0.999,
+        "loo_differences": [{"model_a": CURVED, "model_b": PRIMARY, "elpd_diff": -1.555,
+                             "se": 0.91, "better": PRIMARY}],
+        "check_verdicts": {"linear": "pass", "curved": "fail"},
+        "verdict": "Little of the spread of taxon exponents is explained by curvature: the "
+                   "taxa differ in their own right. Adding a shared curvature term lowers the "
+                   "variance by 3%.",
+        "local_exponent": {CURVED: {"size_unit": "g", "grid": [{"size": 1.0, "median": 0.55}],
+                                    "crossings": [{"name": "metabolic law", "value": 0.75,
+                                                   "median_curve_crossing_size": 101.2,
+                                                   "crossing_size_median": 99.0,
+                                                   "crossing_size_q05": 40.0,
+                                                   "crossing_size_q95": 260.0,
+                                                   "p_crossing_within_observed_range": 0.97}]}},
     }))
+    summ = {"mean": 0.75, "sd": 0.03, "median": 0.751, "q05": 0.696, "q95": 0.801}
     (res / "breakpoint.json").write_text(json.dumps({
-        "supported": False, "conclusion": "No break: the breakpoint model predicts worse.",
-        "elpd_diff": -2.5,
+        "applicable": True,
+        "models": {BREAK: {
+            "applicable": True,
+            "break_size": {"unit": "g", "median": 298.4, "q05": 191.7, "q95": 505.2,
+                           "mean_log": 5.7},
+            "exponent_below": summ,
+            "exponent_above": {**summ, "median": 0.901, "q05": 0.813, "q95": 0.981},
+            "difference": {**summ, "median": 0.15},
+            "delta": 0.03, "p_abs_difference_above_delta": 0.993, "p_exponent_increases": 0.99,
+            "check_verdict": "not checked",
+        }},
     }))
     assert len(clean_species) == 24
     return config
@@ -473,6 +500,35 @@ def test_methods_paragraph_and_reproducibility_footer(rendered):
     assert re.search(r"this page \d+\.\d s", footer)
 
 
+def test_curvature_and_breakpoint_answers_follow_the_compare_outputs(rendered):
+    _, _, html = rendered
+    curv = unescape(re.search(r'id="headline-curvature">(.*?)</li>', html, re.S).group(1))
+    assert "Little of the spread of taxon exponents is explained by curvature" in curv
+    brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
+    # P(|diff| > δ) = 0.993 ≥ 0.95, breakpoint model absent from comparison.csv, not failed
+    assert "supported — model breakpoint puts the break at 298.4 g" in brk
+    assert "(90% interval 191.7 to 505.2)" in brk
+    tables = _tables(html)
+    share = dict(tables["table-curvature"])
+    assert _close(share["share of between-taxon exponent variance explained by curvature "
+                        "(all levels)"], 0.031)
+    assert tables["table-crossings"][1][0] == CURVED
+
+
+def test_breakpoint_not_supported_when_loo_prefers_another_model_by_over_2_se(tmp_path):
+    config = build_results(tmp_path)
+    res = Path(config["results_dir"]) / "demo"
+    comp = pd.read_csv(res / "comparison.csv")
+    comp.loc[len(comp)] = {"dataset": "demo", "model": BREAK, "rank": 2, "elpd_loo": -20.0,
+                           "se": 3.0, "elpd_diff": 7.655, "dse": 2.0, "p_loo": 8.0,
+                           "stacking_weight": 0.0, "n_bad_k": 0, "warning": False}
+    comp.to_csv(res / "comparison.csv", index=False)
+    html = report.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
+    assert "not supported" in brk
+    assert "LOO prefers another model by more than 2 SE" in brk
+
+
 def test_break_and_local_exponent_figures_appear_for_the_models_that_have_them(rendered):
     _, _, html = rendered
     assert f'id="fig-break-{BREAK}"' in html
@@ -495,6 +551,16 @@ def test_local_exponent_of_a_quadratic_law_is_its_derivative(rendered):
         slice(None))
     expected = b[step, None] + 2 * c[step, None] * (grid[None, :] - math.log(100.0))
     np.testing.assert_allclose(slope, expected, atol=1e-9)
+
+
+def test_scatter_draws_population_band_and_each_named_exponent(rendered):
+    config, _, html = rendered
+    scatter = html[html.index('id="fig-scatter"'):]
+    scatter = scatter[:scatter.index("</figure>")]
+    assert "<title>population law (90% band)</title>" in scatter
+    for e in config["hypotheses"]["exponents"]:
+        assert re.search(rf'<path d="M[^"]+"[^>]*stroke-dasharray="[^"]+"><title>'
+                         rf'{re.escape(e["name"])} \({e["value"]:g}\)</title>', scatter), e
 
 
 def test_log_axes_place_points_linearly_in_log10(rendered):

@@ -110,7 +110,7 @@ def scatter_law_svg(
     for band in bands:
         parts.append(ax.band(band))
     for ref in reference_lines:
-        parts.append(ax.band(ref))
+        parts.append(ax.line(ref))
     for band in bands:
         parts.append(ax.line(band))
     for s in series:

@@ -277,11 +277,16 @@ def summarise_dataset(
         "pct": _pct,
     }
     context["data"] = _data_section(prepared, clean, ledger, levels)
-    context["hypotheses"] = _table(hyp)
+    context["hypotheses"] = _table(hyp, constant=("dataset", "parameter"),
+                                   hidden=("method", "note"))
+    context["hypothesis_notes"] = (
+        sorted(set(hyp["note"].dropna().astype(str)) - {""})
+        if hyp is not None and "note" in hyp.columns else []
+    )
     context["comparison"] = _table(comp)
     context["comparison_models"] = sorted(set(comp["model"])) if comp is not None else []
-    context["curvature"] = _json_section(curv, kind="curvature")
-    context["breakpoint"] = _json_section(brk, kind="breakpoint")
+    context["curvature"] = _curvature_section(curv)
+    context["breakpoint"] = _breakpoint_section(brk, comp)
     context["worst_verdict"] = _worst_verdict(model_info)
     context["headline"] = _headline(
         primary, fits.get(primary), hyp, context["curvature"], context["breakpoint"],
@@ -534,48 +539,146 @@ def _ppc_figures(ppc: dict[str, Any], trait_unit: str) -> dict[str, Markup]:
     return figs
 
 
-def _table(frame: pd.DataFrame | None) -> dict[str, Any] | None:
+def _table(
+    frame: pd.DataFrame | None, *, constant: tuple[str, ...] = ("dataset",),
+    hidden: tuple[str, ...] = (),
+) -> dict[str, Any] | None:
+    """Rows of a result CSV; ``constant`` columns are left out (and named once) when they
+    hold one value; ``hidden`` ones are left out always."""
     if frame is None:
         return None
     records = [
         {k: (None if _isnan(v) else v) for k, v in rec.items()}
         for rec in frame.to_dict("records")
     ]
-    return {"columns": list(frame.columns), "rows": records}
+    same = {
+        c: str(frame[c].iloc[0]) for c in constant
+        if c in frame.columns and len(frame)
+        and (frame[c].astype(str) == str(frame[c].iloc[0])).all()
+    }
+    columns = [c for c in frame.columns if c not in same and c not in hidden]
+    return {"columns": columns, "rows": records, "same": same}
 
 
-def _json_section(obj: Any, *, kind: str) -> dict[str, Any] | None:
-    """Plain sentence(s), a yes/no answer and a flat table of numbers from a compare JSON.
+def _curvature_section(obj: Any) -> dict[str, Any] | None:
+    """The curvature audit as shown: its verdict sentence, a short answer and its numbers.
 
-    The compare stage's JSON layout is read tolerantly: a sentence under ``conclusion``,
-    ``summary`` or ``finding(s)``; the yes/no answer under ``supported`` (breakpoint) or a key
-    containing ``explain`` (curvature audit); every other scalar is listed with its key.
+    Reads ``curvature_audit.json`` as the compare stage writes it (``applicable``, ``reason``
+    or ``verdict``, ``share_explained_by_curvature``, ``curvature``, ``p_curvature_positive``,
+    ``loo_differences``, ``local_exponent``); other keys are listed as they are.
     """
     if obj is None:
         return None
     if not isinstance(obj, dict):
-        return {"text": [str(obj)], "answer": None, "numbers": []}
-    text: list[str] = []
-    for key in ("conclusion", "summary", "finding", "findings", "statement", "message", "note"):
-        val = obj.get(key)
-        if isinstance(val, str) and val:
-            text.append(val)
-        elif isinstance(val, list):
-            text += [str(v) for v in val if isinstance(v, str)]
-    answer = None
-    for key, val in obj.items():
-        if isinstance(val, bool) and (
-            (kind == "breakpoint" and "support" in key)
-            or (kind == "curvature" and "explain" in key)
-        ):
-            answer = val
-            break
-    shown = {"conclusion", "summary", "finding", "findings", "statement", "message", "note"}
-    numbers = [
-        (k, v) for k, v in _flatten({k: v for k, v in obj.items() if k not in shown})
-        if not isinstance(v, str) or len(v) < 200
-    ]
-    return {"text": text, "answer": answer, "numbers": numbers}
+        return {"answer": str(obj), "text": [], "numbers": [], "loo": [], "crossings": []}
+    if not obj.get("applicable", True):
+        reason = str(obj.get("reason", "no reason given"))
+        crossings = _crossings(obj)
+        return {"answer": f"not audited ({reason})", "text": [], "numbers": [], "loo": [],
+                "crossings": crossings}
+    verdict = str(obj.get("verdict") or obj.get("conclusion") or "")
+    answer = verdict.split(". ")[0].rstrip(".") + "." if verdict else (
+        "the audit gives no verdict sentence")
+    numbers: list[tuple[str, Any]] = []
+    share = obj.get("share_explained_by_curvature") or {}
+    if "all_levels" in share:
+        numbers.append(("share of between-taxon exponent variance explained by curvature "
+                        "(all levels)", share["all_levels"]))
+    for level, value in (share.get("by_level") or {}).items():
+        numbers.append((f"share explained at level {level}", value))
+    curv = obj.get("curvature") or {}
+    if "median" in curv:
+        numbers.append(("curvature c, median (90% interval)",
+                        f"{_fmt(curv['median'])} ({_fmt(curv.get('q05'))} to "
+                        f"{_fmt(curv.get('q95'))})"))
+    if "p_curvature_positive" in obj:
+        numbers.append(("P(curvature > 0)", obj["p_curvature_positive"]))
+    for key, value in (obj.get("check_verdicts") or {}).items():
+        numbers.append((f"check verdict of the {key} model", value))
+    skip = {"applicable", "verdict", "conclusion", "reason", "share_explained_by_curvature",
+            "curvature", "p_curvature_positive", "loo_differences", "local_exponent",
+            "check_verdicts", "models", "exponent_sd", "mean_exponent_variance", "curvature_sd"}
+    numbers += [(k, v) for k, v in _flatten({k: v for k, v in obj.items() if k not in skip})]
+    for level, by_model in (obj.get("exponent_sd") or {}).items():
+        for key, summ in by_model.items():
+            if isinstance(summ, dict) and "median" in summ:
+                numbers.append((f"exponent SD at {level}, {key} model",
+                                f"{_fmt(summ['median'])} ({_fmt(summ.get('q05'))} to "
+                                f"{_fmt(summ.get('q95'))})"))
+    return {"answer": answer, "text": [verdict] if verdict else [], "numbers": numbers,
+            "loo": list(obj.get("loo_differences") or []), "crossings": _crossings(obj)}
+
+
+def _crossings(obj: dict[str, Any]) -> list[dict[str, Any]]:
+    rows = []
+    for model, local in (obj.get("local_exponent") or {}).items():
+        for c in (local or {}).get("crossings", []):
+            rows.append({"model": model, "unit": local.get("size_unit", ""), **c})
+    return rows
+
+
+# Rule of thumb for calling a break supported (common practice, no source): the exponents on
+# the two sides differ by more than δ with probability ≥ 0.95, the breakpoint model is not
+# worse than the best by LOO by more than 2 SE of the difference, and its checks did not fail.
+_BREAK_P_MIN = 0.95
+_BREAK_DSE = 2.0
+
+
+def _breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] | None:
+    """The breakpoint summary as shown, with a supported / not supported answer.
+
+    Reads ``breakpoint.json`` as the compare stage writes it (``applicable``, ``reason`` or
+    ``models: {name: {break_size, exponent_below, exponent_above, difference, delta,
+    p_abs_difference_above_delta, p_exponent_increases, check_verdict}}``) and the model's
+    row of ``comparison.csv``.
+    """
+    if obj is None:
+        return None
+    if not isinstance(obj, dict):
+        return {"answer": str(obj), "supported": None, "rows": [], "rule": None}
+    if not obj.get("applicable", True) or not obj.get("models"):
+        reason = str(obj.get("reason", "no breakpoint model"))
+        return {"answer": f"not assessed ({reason})", "supported": None, "rows": [],
+                "rule": None}
+    rows = []
+    for model, m in obj["models"].items():
+        row: dict[str, Any] = {"model": model, **m}
+        loo = None
+        if comp is not None and "model" in comp.columns:
+            match = comp[comp["model"] == model]
+            if not match.empty:
+                loo = match.iloc[0].to_dict()
+        row["loo"] = loo
+        p = _float(m.get("p_abs_difference_above_delta"))
+        checks_ok = m.get("check_verdict") != "fail"
+        loo_ok = None
+        if loo is not None:
+            diff, dse = _float(loo.get("elpd_diff")), _float(loo.get("dse"))
+            if diff is not None and dse is not None:
+                loo_ok = abs(diff) <= _BREAK_DSE * dse or abs(diff) == 0
+        row["supported"] = (p is not None and p >= _BREAK_P_MIN and checks_ok
+                            and loo_ok is not False)
+        row["loo_ok"] = loo_ok
+        rows.append(row)
+    best = rows[0]
+    size = best.get("break_size") or {}
+    unit = size.get("unit", "")
+    verdict = "supported" if best["supported"] else "not supported"
+    answer = (
+        f"{verdict} — model {best['model']} puts the break at {_fmt(size.get('median'))} "
+        f"{unit} (90% interval {_fmt(size.get('q05'))} to {_fmt(size.get('q95'))}); exponent "
+        f"{_fmt((best.get('exponent_below') or {}).get('median'))} below and "
+        f"{_fmt((best.get('exponent_above') or {}).get('median'))} above; P(|difference| > "
+        f"{_fmt(best.get('delta'))}) = {_fmt(best.get('p_abs_difference_above_delta'))}"
+    )
+    if best["loo_ok"] is False:
+        answer += "; LOO prefers another model by more than 2 SE"
+    if best.get("check_verdict") == "fail":
+        answer += "; its checks failed"
+    return {"answer": answer + ".", "supported": best["supported"], "rows": rows,
+            "rule": (f"A break is called supported when P(|difference| > δ) ≥ {_BREAK_P_MIN}, "
+                     f"the breakpoint model is within {_BREAK_DSE:g} SE of the best model by "
+                     "LOO, and its checks did not fail (a rule of thumb, not a test).")}
 
 
 def _flatten(obj: Any, prefix: str = "") -> list[tuple[str, Any]]:
