@@ -187,7 +187,7 @@ def expected_log_trait(
     """
     post = idata.posterior
     grid = np.atleast_1d(np.asarray(log_size, dtype=float))
-    ref = float(idata.constant_data["log_size_ref"].values)
+    ref = _scalar(idata.constant_data["log_size_ref"])
     if (level is None) != (taxon is None):
         msg = "expected_log_trait: give both level and taxon, or neither"
         raise ValueError(msg)
@@ -213,7 +213,7 @@ def expected_log_trait(
     if "curvature" in post:
         out = out + draws("curvature")[:, None] * dx**2
     if "break_log_size" in post:
-        width = float(idata.constant_data["hinge_width"].values)
+        width = _scalar(idata.constant_data["hinge_width"])
         brk = post["break_log_size"].values.reshape(-1)[:, None]
         pop_b = post["exponent"].values.reshape(-1)
         above = post["exponent_above"].values.reshape(-1) + (b - pop_b)
@@ -416,8 +416,9 @@ def _check_finite(data: pd.DataFrame, column: str, source: str) -> None:
     bad = ~np.isfinite(values)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
+        value = _plain(data[column].iloc[row])
         msg = (
-            f"{source}: line {row + 2}, column '{column}', value {data[column].iloc[row]!r}: "
+            f"{source}: line {row + 2}, column '{column}', value {value!r}: "
             "not a finite number"
         )
         raise UserError(msg)
@@ -443,8 +444,9 @@ def _error_sd(data: pd.DataFrame, axis: str, spec: ModelSpec, source: str) -> np
     bad = ~np.isfinite(sd) | (sd < 0)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
+        value = _plain(data[column].iloc[row])
         msg = (
-            f"{source}: line {row + 2}, column '{column}', value {data[column].iloc[row]!r}: "
+            f"{source}: line {row + 2}, column '{column}', value {value!r}: "
             f"model spec '{spec.name}' needs a measurement-error SD (≥ 0) for every species"
         )
         raise UserError(msg)
@@ -527,6 +529,16 @@ def _hinge(spec: ModelSpec, inputs: _Inputs, x: Any, x_ref: Any, exponent: Any) 
 
 def _softplus(d: Any, width: Any) -> Any:
     return width * pt.softplus(d / width)
+
+
+def _plain(value: Any) -> Any:
+    # numpy scalars print as np.float64(...); messages show the plain value
+    return value.item() if hasattr(value, "item") else value
+
+
+def _scalar(var: Any) -> float:
+    # constant data may carry a length-1 dim when read back from some writers
+    return float(np.asarray(var.values).reshape(-1)[0])
 
 
 def _softplus_np(d: np.ndarray, width: float) -> np.ndarray:

@@ -1,0 +1,354 @@
+"""The model builder: contract names and dims, nesting, the law's formula, recovery of truth."""
+
+import json
+from pathlib import Path
+
+import arviz as az
+import numpy as np
+import pandas as pd
+import pymc as pm
+import pytest
+
+from allolaw.errors import UserError
+from allolaw.modeling import (
+    BOLTZMANN_EV_PER_K,
+    build_model,
+    expected_log_trait,
+    select_levels,
+    taxon_parameterisation,
+)
+from allolaw.spec import load_spec, parse_spec
+from allolaw.testing import (
+    quick_sample,
+    simulate_breakpoint,
+    simulate_curvature,
+    simulate_law,
+    simulate_taxa,
+)
+
+REPO = Path(__file__).resolve().parents[1]
+MODELS = REPO / "models"
+DEMO_MODELS = [
+    "pooled",
+    "taxa",
+    "taxa_errors",
+    "taxa_errors_curved",
+    "taxa_errors_curved_by_taxon",
+    "breakpoint",
+    "pooled_robust",
+    "taxa_robust",
+    "taxa_errors_robust",
+    "taxa_errors_temperature",
+]
+
+
+def _nested_data():
+    sim = simulate_taxa(seed=3, taxa=(3, 2), species_per_taxon=6, size_error_sd=0.05,
+                        trait_error_sd=0.05, replicates=3)
+    sim.data["cov_body_temp_c"] = 300.0 + (np.arange(len(sim.data)) % 7)
+    return sim
+
+
+@pytest.mark.parametrize("name", DEMO_MODELS)
+def test_every_demo_model_builds_with_the_contract_names_and_dims(name):
+    sim = _nested_data()
+    spec = load_spec(MODELS, name)
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.5)
+    names = set(model.named_vars)
+    assert {"intercept", "exponent", "sigma", "trait", "log_size_obs", "log_size_ref"} <= names
+    assert model.named_vars_to_dims["trait"] == ("species",)
+    assert list(model.coords["species"]) == list(sim.data["species"])
+    assert model["trait"] in model.observed_RVs
+    if spec.taxa["levels"] != "none":
+        for level in sim.levels:
+            assert model.named_vars_to_dims[f"taxon_intercept__{level}"] == (level,)
+            assert f"intercept_sd__{level}" in names
+            if "exponent" in spec.taxa["vary"]:
+                assert model.named_vars_to_dims[f"taxon_exponent__{level}"] == (level,)
+                assert f"exponent_sd__{level}" in names
+            assert model[f"taxon_intercept__{level}"] in model.deterministics
+    if spec.has_size_error:
+        assert model.named_vars_to_dims["true_log_size"] == ("species",)
+    else:
+        assert "true_log_size" not in names
+    assert ("curvature" in names) == (spec.curvature != "none")
+    if spec.curvature == "shared_and_taxa":
+        assert model.named_vars_to_dims["taxon_curvature__family"] == ("family",)
+    assert ("break_log_size" in names) == ("exponent_above" in names) == (spec.breakpoint == "one")
+    assert ("nu" in names) == (spec.residuals == "student_t")
+    for cov in spec.covariates:
+        assert f"coef__{cov['column']}" in names
+
+
+def test_inner_taxon_value_is_its_parent_value_plus_its_own_deviation():
+    sim = _nested_data()
+    spec = parse_spec({"taxa": {"levels": "all", "parameterisation": "non-centred"}}, name="n")
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+    with model:
+        prior = pm.sample_prior_predictive(draws=20, random_seed=1).prior
+    parent = sim.data.groupby("family")["order"].first()
+    for term in ("intercept", "exponent"):
+        family = prior[f"taxon_{term}__family"]
+        order = prior[f"taxon_{term}__order"]
+        for fam in family["family"].values:
+            dev = prior[f"{term}_sd__family"] * prior[f"{term}_z__family"].sel(family=fam)
+            expect = order.sel(order=parent[fam]) + dev
+            np.testing.assert_allclose(family.sel(family=fam), expect, rtol=1e-6)
+        pop_dev = prior[f"{term}_dev__order"] if f"{term}_dev__order" in prior else (
+            prior[f"{term}_sd__order"] * prior[f"{term}_z__order"])
+        np.testing.assert_allclose(order, prior[term] + pop_dev, rtol=1e-6)
+
+
+def test_expected_log_trait_follows_the_law_term_by_term():
+    # hand-built posterior: 2 chains x 3 draws, one level with two taxa, a hinge
+    rng = np.random.default_rng(0)
+    shape = (2, 3)
+    a, b, brk, above = (rng.normal(m, 0.1, shape) for m in (1.0, 0.8, 1.0, 0.4))
+    ta = np.stack([a + 0.2, a - 0.2], axis=-1)
+    tb = np.stack([b + 0.1, b - 0.1], axis=-1)
+    idata = az.from_dict(
+        posterior={"intercept": a, "exponent": b, "break_log_size": brk, "exponent_above": above,
+                   "taxon_intercept__genus": ta, "taxon_exponent__genus": tb},
+        coords={"genus": ["g1", "g2"]},
+        dims={"taxon_intercept__genus": ["genus"], "taxon_exponent__genus": ["genus"]},
+        constant_data={"log_size_ref": np.array(0.5), "hinge_width": np.array(0.1)},
+    )
+    grid = np.array([-1.0, 0.5, 3.0])
+
+    def hinge(d):
+        return 0.1 * np.logaddexp(0.0, d / 0.1)
+
+    def law(i, s):
+        slope_change = (above - b).reshape(-1, 1)
+        return (i.reshape(-1, 1) + s.reshape(-1, 1) * (grid - 0.5)
+                + slope_change * (hinge(grid - brk.reshape(-1, 1))
+                                  - hinge(0.5 - brk.reshape(-1, 1))))
+
+    np.testing.assert_allclose(expected_log_trait(idata, grid), law(a, b))
+    np.testing.assert_allclose(expected_log_trait(idata, grid, level="genus", taxon="g2"),
+                               law(a - 0.2, b - 0.1))
+    # the intercept is the law at the reference size, hinge included
+    np.testing.assert_allclose(expected_log_trait(idata, 0.5)[:, 0], a.reshape(-1))
+    with pytest.raises(UserError, match="g3"):
+        expected_log_trait(idata, grid, level="genus", taxon="g3")
+    with pytest.raises(UserError, match="no taxon terms at level 'order'"):
+        expected_log_trait(idata, grid, level="order", taxon="o1")
+
+
+def test_expected_log_trait_adds_curvature_per_taxon():
+    c = np.full((1, 2), -0.1)
+    idata = az.from_dict(
+        posterior={"intercept": np.zeros((1, 2)), "exponent": np.ones((1, 2)), "curvature": c,
+                   "taxon_curvature__genus": np.stack([c - 0.05, c + 0.05], axis=-1)},
+        coords={"genus": ["g1", "g2"]},
+        dims={"taxon_curvature__genus": ["genus"]},
+        constant_data={"log_size_ref": np.array(0.0)},
+    )
+    grid = np.array([-2.0, 2.0])
+    np.testing.assert_allclose(expected_log_trait(idata, grid)[0], grid - 0.1 * grid**2)
+    np.testing.assert_allclose(expected_log_trait(idata, grid, level="genus", taxon="g1")[0],
+                               grid - 0.15 * grid**2)
+
+
+def test_auto_parameterisation_centres_only_well_informed_levels_with_small_errors():
+    many = simulate_law(seed=1, taxa=(3, 12), species_per_taxon=12)
+    spec = parse_spec({"taxa": {"levels": "all"}}, name="a")
+    # 12 families per order and 12 species per family: both informed → centred
+    assert taxon_parameterisation(many.data, spec, levels=many.levels) == {
+        "order": "centred", "family": "centred"}
+    few = simulate_law(seed=1, taxa=(3, 2), species_per_taxon=12)
+    # only 2 families per order: the order level is non-centred
+    assert taxon_parameterisation(few.data, spec, levels=few.levels) == {
+        "order": "non-centred", "family": "centred"}
+    noisy = simulate_law(seed=1, taxa=(3, 12), species_per_taxon=12, size_error_sd=1.0,
+                         log_size_sd=1.0)
+    errors = parse_spec({"taxa": {"levels": "all"}, "size_error": "known"}, name="e")
+    assert set(taxon_parameterisation(noisy.data, errors, levels=noisy.levels).values()) == {
+        "non-centred"}
+    fixed = parse_spec({"taxa": {"levels": "innermost", "parameterisation": "centred"}}, name="f")
+    assert taxon_parameterisation(few.data, fixed, levels=few.levels) == {"family": "centred"}
+
+
+def test_level_choice_follows_the_spec_and_rejects_unknown_levels():
+    levels = ["order", "family"]
+    assert select_levels(parse_spec({}, name="x"), levels) == levels
+    assert select_levels(parse_spec({"taxa": {"levels": "innermost"}}, name="x"), levels) == [
+        "family"]
+    assert select_levels(parse_spec({"taxa": {"levels": ["family"]}}, name="x"), levels) == [
+        "family"]
+    with pytest.raises(UserError, match="'genus'"):
+        select_levels(parse_spec({"taxa": {"levels": ["genus"]}}, name="x"), levels)
+
+
+def test_missing_error_column_is_a_user_error_naming_the_column():
+    sim = simulate_law(seed=1, n_species=20)
+    data = sim.data.drop(columns=["sd_log_size"])
+    with pytest.raises(UserError, match="column 'sd_log_size'"):
+        build_model(data, load_spec(MODELS, "taxa_errors"), levels=[], log_reference_size=0.0)
+
+
+def test_missing_error_sd_names_line_column_and_value():
+    sim = simulate_law(seed=1, n_species=20, size_error_sd=0.1, trait_error_sd=0.1)
+    sim.data.loc[4, "sd_log_size"] = np.nan
+    with pytest.raises(UserError, match=r"line 6, column 'sd_log_size', value nan"):
+        build_model(sim.data, load_spec(MODELS, "taxa_errors"), levels=[],
+                    log_reference_size=0.0)
+
+
+def test_known_errors_refuse_sds_that_were_not_given():
+    sim = simulate_law(seed=1, n_species=20, size_error_sd=0.1, replicates=3)
+    spec = parse_spec({"taxa": {"levels": "none"}, "size_error": "known"}, name="k")
+    with pytest.raises(UserError, match=r"sd_source_size', value 'replicates'"):
+        build_model(sim.data, spec, levels=[], log_reference_size=0.0)
+
+
+def test_taxa_that_do_not_nest_are_a_user_error():
+    sim = simulate_taxa(seed=1, taxa=(2, 2), species_per_taxon=3)
+    sim.data.loc[0, "family"] = sim.data.loc[len(sim.data) - 1, "family"]
+    with pytest.raises(UserError, match="must nest"):
+        build_model(sim.data, load_spec(MODELS, "taxa"), levels=sim.levels,
+                    log_reference_size=0.0)
+
+
+def test_boltzmann_covariate_is_centred_inverse_temperature():
+    # 1/(kT) with k = 8.617e-5 eV/K (Gillooly et al. 2001, Science 293:2248)
+    sim = simulate_law(seed=1, n_species=10, size_error_sd=0.1, trait_error_sd=0.1)
+    kelvin = np.linspace(290.0, 310.0, 10)
+    sim.data["cov_body_temp_c"] = kelvin
+    model = build_model(sim.data, load_spec(MODELS, "taxa_errors_temperature"), levels=[],
+                        log_reference_size=0.0)
+    inverse = 1.0 / (BOLTZMANN_EV_PER_K * kelvin)
+    np.testing.assert_allclose(model["covariate__body_temp_c"].get_value(),
+                               inverse - inverse.mean())
+    sim.data.loc[2, "cov_body_temp_c"] = -5.0
+    with pytest.raises(UserError, match="kelvin"):
+        build_model(sim.data, load_spec(MODELS, "taxa_errors_temperature"), levels=[],
+                    log_reference_size=0.0)
+
+
+def _smoke_data(name: str):
+    if name == "breakpoint":
+        return simulate_breakpoint(seed=8, species_per_taxon=15, sigma=0.1)
+    curved = "curved" in name
+    return simulate_law(
+        seed=7, taxa=(5,), level_names=("genus",), species_per_taxon=10, sigma=0.15,
+        intercept_sd=0.3, exponent_sd=0.1, curvature=-0.05 if curved else 0.0,
+        curvature_sd=0.03 if "by_taxon" in name else 0.0, size_error_sd=0.05,
+        trait_error_sd=0.05, replicates=3,
+    )
+
+
+@pytest.mark.mcmc
+def test_a_fit_through_the_fit_stage_recovers_the_exponent_without_divergences():
+    from allolaw.fitting import fit_model
+
+    sim = _smoke_data("taxa_errors")
+    model = build_model(sim.data, load_spec(MODELS, "taxa_errors"), levels=sim.levels,
+                        log_reference_size=0.0)
+    idata = fit_model(model, chains=2, draws=300, tune=400, target_accept=0.95, seed=11,
+                      prior_draws=20)
+    assert int(idata.sample_stats["diverging"].sum()) == 0
+    assert list(idata.log_likelihood.data_vars) == ["trait"]
+    assert {"log_size_obs", "log_size_ref"} <= set(idata.constant_data.data_vars)
+    law = expected_log_trait(idata, np.array([0.0, 1.0]))
+    slope = law[:, 1] - law[:, 0]
+    lo, hi = np.quantile(slope, [0.05, 0.95])
+    assert lo < sim.truth["exponent"] < hi
+
+
+@pytest.mark.mcmc
+@pytest.mark.slow  # ten fits: several minutes on the shared machine
+@pytest.mark.parametrize("name", DEMO_MODELS)
+def test_every_demo_model_fits_small_data_without_divergences(name):
+    sim = _smoke_data(name)
+    if "temperature" in name:
+        sim.data["cov_body_temp_c"] = np.linspace(295.0, 310.0, len(sim.data))
+    model = build_model(sim.data, load_spec(MODELS, name), levels=sim.levels,
+                        log_reference_size=0.0)
+    idata = quick_sample(model, seed=12, draws=500, tune=700, target_accept=0.95)
+    assert int(idata.sample_stats["diverging"].sum()) == 0
+    rhat = az.rhat(idata)
+    worst = max(float(rhat[v].max()) for v in rhat.data_vars)
+    assert worst < 1.01
+
+
+def _inside_90(draws: np.ndarray, value: float) -> bool:
+    lo, hi = np.quantile(draws, [0.05, 0.95])
+    return bool(lo < value < hi)
+
+
+@pytest.mark.mcmc
+@pytest.mark.slow
+def test_curvature_model_recovers_exponent_and_curvature_of_taxa_in_different_size_ranges():
+    sim = simulate_curvature(seed=41, curvature=-0.1, sigma=0.1, size_error_sd=0.05,
+                             trait_error_sd=0.05)
+    model = build_model(sim.data, load_spec(MODELS, "taxa_errors_curved"), levels=sim.levels,
+                        log_reference_size=0.0)
+    idata = quick_sample(model, seed=13, draws=500, tune=700, target_accept=0.95)
+    post = idata.posterior
+    assert _inside_90(post["exponent"].values.ravel(), sim.truth["exponent"])
+    assert _inside_90(post["curvature"].values.ravel(), sim.truth["curvature"])
+    assert np.quantile(post["curvature"].values, 0.95) < 0
+
+
+@pytest.mark.mcmc
+@pytest.mark.slow
+def test_breakpoint_model_recovers_break_location_and_both_exponents():
+    sim = simulate_breakpoint(seed=42, break_log_size=0.5, exponent=0.9, exponent_above=0.5,
+                              sigma=0.1)
+    model = build_model(sim.data, load_spec(MODELS, "breakpoint"), levels=sim.levels,
+                        log_reference_size=0.0)
+    idata = quick_sample(model, seed=14, draws=500, tune=700, target_accept=0.95)
+    post = idata.posterior
+    for name in ("break_log_size", "exponent", "exponent_above"):
+        assert _inside_90(post[name].values.ravel(), sim.truth[name]), name
+
+
+@pytest.mark.mcmc
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    ("dataset", "model", "parameters"),
+    [
+        ("cell_scaling", "breakpoint", ["break_log_size", "exponent_above"]),
+        ("tree_biomass", "taxa_errors_curved", ["exponent", "curvature"]),
+    ],
+)
+def test_demo_truth_is_recovered(tmp_path, dataset, model, parameters):
+    # the invented demo data and their truth.json (written by allolaw.demo)
+    from allolaw.config import load_config
+    from allolaw.intake import prepare_dataset, read_clean, read_prepared
+
+    config = load_config(REPO / "config" / "config.yaml",
+                         [f"results_dir={tmp_path}"])
+    truth = json.loads((REPO / "data" / "demo" / "truth.json").read_text())[dataset]
+    for source in config["datasets"][dataset]["sources"]:
+        source["file"] = str(REPO / source["file"])
+    prepare_dataset(config, dataset)
+    data = read_clean(tmp_path, dataset)
+    prepared = read_prepared(tmp_path, dataset)
+    levels = list(config["datasets"][dataset]["sources"][0]["columns"].get("levels", []))
+    log_ref = float(prepared["log_reference_size"])
+    idata = quick_sample(build_model(data, load_spec(MODELS, model), levels=levels,
+                                     log_reference_size=log_ref),
+                         seed=15, draws=500, tune=700, target_accept=0.95)
+    for name in parameters:
+        draws = idata.posterior[name].values.ravel()
+        value = truth[name]
+        if name == "exponent" and "curvature" in truth and truth["log_reference_size"] != log_ref:
+            # the exponent at our reference size on a curved law: b + 2c(x_ref − x_truth)
+            value = truth["exponent"] + 2 * truth["curvature"] * (
+                log_ref - truth["log_reference_size"])
+        assert _inside_90(draws, value), (name, np.quantile(draws, [0.05, 0.95]), value)
+
+
+def test_simulated_tables_have_the_clean_csv_columns():
+    sim = simulate_taxa(seed=1)
+    expected = ["species", "order", "family", "log_size", "log_trait", "n_rows",
+                "within_sd_log_size", "within_sd_log_trait", "sd_log_size", "sd_log_trait",
+                "sd_source_size", "sd_source_trait", "source", "flag_outlier",
+                "flag_singleton_taxon"]
+    assert list(sim.data.columns) == expected
+    assert isinstance(sim.data, pd.DataFrame)
+    assert sim.data["species"].is_unique
+    # same seed, same table
+    pd.testing.assert_frame_equal(sim.data, simulate_taxa(seed=1).data)
