@@ -352,3 +352,38 @@ def test_simulated_tables_have_the_clean_csv_columns():
     assert sim.data["species"].is_unique
     # same seed, same table
     pd.testing.assert_frame_equal(sim.data, simulate_taxa(seed=1).data)
+
+
+@pytest.mark.mcmc
+@pytest.mark.slow  # 20 fits: 10-20 minutes on the shared machine
+def test_sbc_ranks_of_the_curved_errors_model_are_uniform_and_intervals_cover():
+    # Simulation-based calibration (Talts et al. 2018, arXiv:1804.06788): ranks of the true
+    # value among posterior draws are uniform for correct model code and sampler. A small
+    # study: 20 replicates, 5 bins; the chi-square test rejects at p < 0.001 only. The
+    # full study is benchmarks/calibration.py.
+    import sys
+
+    sys.path.insert(0, str(REPO / "benchmarks"))
+    from calibration import PARAMETERS, SBC_SPEC, template_table
+
+    from allolaw.testing.calibration import run_calibration
+
+    sim = template_table()
+    result = run_calibration(
+        sim.data, parse_spec(SBC_SPEC, name="sbc"), levels=sim.levels, log_reference_size=0.0,
+        parameters=PARAMETERS, coverage_of="taxon_exponent__genus", replicates=20, n_draws=99,
+        bins=5, seed=5, sampler={"draws": 400, "tune": 600, "target_accept": 0.95},
+    )
+    for name in PARAMETERS:
+        assert result.uniformity[name]["p_value"] > 0.001, (name, result.uniformity[name])
+    # 80 intervals: the SD of the coverage estimate is about 0.034, so 0.9 ± 0.12 (≈ 3.5 SD)
+    assert 0.78 < result.coverage["taxon_exponent__genus"] < 1.0
+
+
+def test_rank_uniformity_flags_piled_up_ranks_and_passes_flat_ones():
+    from allolaw.testing.calibration import rank_uniformity
+
+    flat = np.tile(np.arange(100), 2)
+    assert rank_uniformity(flat, n_draws=99, bins=10)["p_value"] > 0.99
+    piled = np.r_[np.zeros(150, dtype=int), np.arange(50)]  # an over-confident posterior
+    assert rank_uniformity(piled, n_draws=99, bins=10)["p_value"] < 1e-6

@@ -473,9 +473,12 @@ def _true_log_size(spec: ModelSpec, inputs: _Inputs, log_size_obs: Any, *, sigma
     x = inputs.log_size
     spread = float(np.std(x, ddof=1)) if len(x) > 1 else 1.0
     spread = max(spread, 1e-3)
-    # population of true log sizes: weakly informative on the scale of the data
-    size_mean = pm.Normal("size_mean", float(np.mean(x)), 5.0 * spread)
-    size_sd = pm.HalfNormal("size_sd", 2.0 * spread)
+    # population of true log sizes: weakly informative on the scale of the data, unless the
+    # spec fixes the prior (priors.size_population)
+    population = spec.priors.get("size_population") or {
+        "mean": float(np.mean(x)), "sd": 5.0 * spread, "sd_scale": 2.0 * spread}
+    size_mean = pm.Normal("size_mean", population["mean"], population["sd"])
+    size_sd = pm.HalfNormal("size_sd", population["sd_scale"])
     true = pm.Normal("true_log_size", size_mean, size_sd, dims="species")
     if spec.size_error == "ratio":
         pri = spec.priors
