@@ -176,3 +176,17 @@ def test_failed_check_is_written_not_hidden(tmp_path, monkeypatch):
     assert report["refit"] is None
     assert {d["name"] for d in report["diagnostics"]} >= {"rhat", "ess_bulk", "bfmi", "pareto_k"}
     assert "loo_pit" in report["ppc"]
+
+
+def test_a_fixed_parameter_is_not_mistaken_for_a_convergence_failure():
+    idata = line_posterior(seed=14)
+    idata.posterior["error_ratio"] = idata.posterior["sigma"] * 0 + 1.0  # fixed at 1
+    result, _ = check_fit(idata)
+    assert result.verdict == "pass"
+
+
+def test_stuck_chain_is_caught_even_when_other_parameters_are_fixed():
+    idata = line_posterior(seed=15, stuck_chain=True)
+    idata.posterior["error_ratio"] = idata.posterior["sigma"] * 0 + 1.0
+    result, _ = check_fit(idata)
+    assert result.diagnostic("rhat").status == "fail"

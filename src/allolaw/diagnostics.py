@@ -148,6 +148,9 @@ def check_fit(
     posterior = idata.posterior
     if var_names is not None:
         posterior = posterior[var_names]
+    # fixed values stored as draws (e.g. a prior with `fixed:`) have no R-hat or ESS
+    posterior = posterior[[name for name, da in posterior.data_vars.items()
+                           if not _is_constant(da)]]
     n_chains = int(posterior.sizes["chain"])
     n_draws = int(posterior.sizes["draw"])
     diags: list[Diagnostic] = []
@@ -340,10 +343,19 @@ def read_posterior(path: str | Path) -> az.InferenceData:
 # --- diagnostics ----------------------------------------------------------------------------
 
 
-def _worst(ds: Any, *, largest: bool) -> tuple[float, str]:
+def _is_constant(da: Any) -> bool:
+    vals = np.asarray(da.values)
+    return bool(vals.size == 0 or np.all(vals == vals.reshape(-1)[0]))
+
+
+def _worst(ds: Any, *, largest: bool, posterior: Any = None) -> tuple[float, str]:
     worst_val, worst_name = (-math.inf if largest else math.inf), ""
     for name, da in ds.data_vars.items():
         vals = np.asarray(da.values, dtype=float).ravel()
+        if posterior is not None:
+            draws = np.asarray(posterior[name].values)
+            varying = ~np.all(draws == draws[:1, :1], axis=(0, 1)).ravel()
+            vals = vals[varying]  # elements fixed in every draw have no R-hat/ESS
         if vals.size == 0:
             continue
         if np.isnan(vals).any():
@@ -355,7 +367,7 @@ def _worst(ds: Any, *, largest: bool) -> tuple[float, str]:
 
 
 def _rhat_diagnostic(posterior: Any, rhat_max: float) -> Diagnostic:
-    value, name = _worst(az.rhat(posterior, method="rank"), largest=True)
+    value, name = _worst(az.rhat(posterior, method="rank"), largest=True, posterior=posterior)
     ok = math.isfinite(value) and value <= rhat_max
     if ok:
         msg = f"Chains agree: largest rank-normalised R-hat is {value:.3f} ({name})."
@@ -366,7 +378,7 @@ def _rhat_diagnostic(posterior: Any, rhat_max: float) -> Diagnostic:
 
 
 def _ess_diagnostic(posterior: Any, method: str, minimum: float) -> Diagnostic:
-    value, name = _worst(az.ess(posterior, method=method), largest=False)
+    value, name = _worst(az.ess(posterior, method=method), largest=False, posterior=posterior)
     ok = math.isfinite(value) and value >= minimum
     if ok:
         msg = f"Enough {method} effective draws: smallest {method} ESS is {value:.0f} ({name})."
