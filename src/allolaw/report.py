@@ -238,15 +238,15 @@ def summarise_dataset(
     primary = ds.get("primary_model") or models[-1]
 
     prepared = _read_json(paths.prepared_path(results, dataset), missing, "prepared.json",
-                          "run `allolaw prepare`")
+                          "run 'allolaw prepare'")
     clean = _read_csv(paths.clean_path(results, dataset), missing, "clean.csv")
     ledger = _read_csv(paths.ledger_path(results, dataset), missing, "ledger.csv")
     hyp = _read_csv(paths.hypotheses_path(results, dataset), missing, "hypotheses.csv")
     comp = _read_csv(paths.comparison_path(results, dataset), missing, "comparison.csv")
     curv = _read_json(paths.curvature_audit_path(results, dataset), missing,
-                      "curvature_audit.json", "run `allolaw compare`")
+                      "curvature_audit.json", "run 'allolaw compare'")
     brk = _read_json(paths.breakpoint_path(results, dataset), missing, "breakpoint.json",
-                     "run `allolaw compare`")
+                     "run 'allolaw compare'")
 
     fits = {}
     model_info = []
@@ -254,7 +254,7 @@ def summarise_dataset(
     for name in models:
         idata = _read_posterior(paths.posterior_path(results, dataset, name), missing, name)
         check = _read_json(paths.check_path(results, dataset, name), missing,
-                           f"checks/{name}.json", "run `allolaw check`")
+                           f"checks/{name}.json", "run 'allolaw check'")
         if idata is not None:
             fits[name] = idata
         model_info.append(
@@ -327,16 +327,35 @@ def _read_csv(path: Path, missing: list[str], label: str) -> pd.DataFrame | None
 
 def _read_posterior(path: Path, missing: list[str], model: str) -> Any:
     if not path.is_file():
-        missing.append(f"The fit of model '{model}' is missing ({path}); run `allolaw fit`.")
+        missing.append(f"The fit of model '{model}' is missing ({path}); run 'allolaw fit'.")
         return None
     import arviz as az
 
     try:
         with az.rc_context({"data.load": "eager"}):
-            return az.from_netcdf(path)
+            idata = az.from_netcdf(path)
     except (OSError, ValueError) as err:
         missing.append(f"The fit of model '{model}' could not be read ({path}): {err}.")
         return None
+    return _squeeze_constants(idata)
+
+
+def _squeeze_constants(idata: Any) -> Any:
+    # A scalar pm.Data may come back with a length-1 dim (e.g. ``log_size_ref_dim_0`` after
+    # numpyro sampling); make such constants 0-d so they read as plain numbers.
+    if not hasattr(idata, "constant_data"):
+        return idata
+    cd = idata.constant_data
+    single = [name for name, var in cd.data_vars.items()
+              if var.size == 1 and var.ndim == 1 and var.dims[0] not in ("species",)]
+    if single:
+        values = {name: float(np.asarray(cd[name].values).reshape(-1)[0]) for name in single}
+        cd = cd.drop_vars(single)
+        unused = [d for d in cd.dims if d.endswith("_dim_0") and not any(
+            d in v.dims for v in cd.data_vars.values())]
+        cd = cd.drop_dims(unused) if unused else cd
+        idata.constant_data = cd.assign({k: ((), v) for k, v in values.items()})
+    return idata
 
 
 def _config_levels(ds: dict[str, Any]) -> list[str]:
@@ -941,12 +960,20 @@ def _figures(
             draws = np.asarray(arr.values, dtype=float).reshape(-1, len(labels))
             qs = np.quantile(draws, [0.05, 0.5, 0.95], axis=0)
             rows = [(labels[j], qs[0, j], qs[1, j], qs[2, j]) for j in range(len(labels))]
+            row_colours = colours if level == colour_level else None
+            if colour_level and level != colour_level and level in clean.columns:
+                # inner taxa: grouped and coloured by their outermost taxon
+                parent = dict(zip(clean[level].astype(str), clean[colour_level].astype(str),
+                                  strict=False))
+                rows.sort(key=lambda r: (parent.get(r[0], ""), r[0]))
+                row_colours = {r[0]: colours.get(parent.get(r[0], ""), "#1d2430")
+                               for r in rows}
             figs["forest"].append({
                 "level": level,
                 "svg": _svg(plots.forest_svg(
                     rows, x_label=f"exponent of each {level} (median, 90% interval)",
                     marks=named, population=tuple(pop),
-                    colours=colours if level == colour_level else None,
+                    colours=row_colours,
                 )),
             })
     figs["local"] = []
