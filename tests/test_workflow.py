@@ -197,13 +197,23 @@ def test_batch_killed_during_a_fit_resumes_to_the_same_outputs(
         if proc.poll() is None:
             os.killpg(proc.pid, signal.SIGKILL)
             proc.wait()
-    time.sleep(1)
+    for _ in range(50):  # the jobs ran in Snakemake's process group: all of them are gone
+        try:
+            os.killpg(proc.pid, 0)
+        except ProcessLookupError:
+            break
+        time.sleep(0.2)
+    else:
+        pytest.fail("processes of the killed batch are still running")
     posterior = work / running / "posterior.nc"
     assert not posterior.exists(), f"{posterior} exists although its fit was killed"
     # Whatever did finish is complete: every posterior under its final name opens.
     for path in (work / "results").glob("*/*/posterior.nc"):
         wr.read_posterior(path)
 
+    # A killed Snakemake leaves its lock behind; the user releases it, then reruns as before.
+    unlock = wr.snakemake(work, "--unlock", timeout=120)
+    assert unlock.returncode == 0, unlock.stdout[-3000:]
     out = wr.run_batch(work, "--profile", str(PROFILES / "local"))
     assert out.returncode == 0, out.stdout[-5000:]
     assert "Finished jobid" in out.stdout

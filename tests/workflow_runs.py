@@ -93,9 +93,14 @@ def snakemake(work: Path, *args: str, timeout: float,
     proc = start_batch(work, *args, wrapper=wrapper, configfile=False)
     try:
         proc.wait(timeout=timeout)
-    except subprocess.TimeoutExpired:
-        os.killpg(proc.pid, signal.SIGKILL)
-        proc.wait()
+    finally:  # timeout or interrupted test: stop Snakemake and its jobs (SIGINT cancels them)
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGINT)
+            try:
+                proc.wait(timeout=60)
+            except subprocess.TimeoutExpired:
+                os.killpg(proc.pid, signal.SIGKILL)
+                proc.wait()
     text = Path(proc.args_log).read_text(encoding="utf-8", errors="replace")
     return subprocess.CompletedProcess(proc.args, proc.returncode, text, "")
 

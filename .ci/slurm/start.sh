@@ -5,8 +5,9 @@
 #
 # Every daemon (munged, slurmctld, slurmd) runs in the foreground of a background shell; its PID
 # goes to STATE_DIR/pids, which .ci/slurm/stop.sh reads to stop exactly these processes. No
-# systemd, no cgroups, no accounting database: job status comes from squeue, so keep
-# MinJobAge (300 s) well above Snakemake's status interval. The config is linked to
+# systemd, no cgroups, no accounting database: job status comes from squeue, which forgets a
+# job MinJobAge seconds after it ends. The SLURM plugin polls at most every 180 s, and the
+# tests ask `scontrol show job` about every job of a batch afterwards, so MinJobAge is 3600. The config is linked to
 # /etc/slurm/slurm.conf, where every client looks (Snakemake's job steps drop SLURM_CONF from
 # their environment, so that variable alone would not do); stop.sh removes the link. A real
 # /etc/slurm/slurm.conf is never replaced: start.sh refuses to run instead.
@@ -68,7 +69,7 @@ SchedulerType=sched/backfill
 SelectType=select/cons_tres
 SelectTypeParameters=CR_Core_Memory
 DefMemPerCPU=1000
-MinJobAge=300
+MinJobAge=3600
 MailProg=/bin/true
 ReturnToService=2
 SlurmctldTimeout=30

@@ -10,6 +10,9 @@ if [ ! -s "$dir/pids" ]; then
     exit 0
 fi
 
+# Running and not a zombie (an ended daemon whose parent has not collected it yet).
+alive() { [ -e "/proc/$1" ] && ! grep -q '^[^)]*) Z' "/proc/$1/stat" 2>/dev/null; }
+
 # Stop in reverse start order (slurmd, slurmctld, munged); skip a PID that now names another
 # program (the daemon already ended and the number was reused).
 tac "$dir/pids" | while read -r name pid; do
@@ -18,8 +21,8 @@ tac "$dir/pids" | while read -r name pid; do
         continue
     fi
     kill -TERM "$pid"
-    for _ in $(seq 100); do kill -0 "$pid" 2>/dev/null || break; sleep 0.1; done
-    if kill -0 "$pid" 2>/dev/null; then
+    for _ in $(seq 100); do alive "$pid" || break; sleep 0.1; done
+    if alive "$pid"; then
         echo "slurm: $name (PID $pid) ignored SIGTERM for 10 s; sending SIGKILL"
         kill -KILL "$pid"
     fi
