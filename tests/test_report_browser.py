@@ -67,6 +67,24 @@ def test_reports_load_offline_without_errors_requests_or_script(tmp_path):
     assert index_result["dom"]["ids"].count("table-index") == 1
 
 
+def test_browser_probe_sees_a_script_dialog_a_console_error_and_a_request(tmp_path):
+    # The harness itself must be able to fail: a page that does each forbidden thing.
+    bad = tmp_path / "bad.html"
+    bad.write_text(
+        "<!DOCTYPE html><html><body><p id='answer'>x</p>"
+        "<script>console.error('boom'); alert(1); window.__allolaw_xss = 1;</script>"
+        "<img src='http://127.0.0.1:9/none.png'></body></html>",
+        encoding="utf-8",
+    )
+    with _Browser(tmp_path / "profile") as browser:
+        res = browser.visit(bad.as_uri(), tmp_path / "bad.png")
+    assert res["dialogs"]
+    assert res["console"]
+    assert any(u.startswith("http://127.0.0.1:9/") for u in res["requests"])
+    assert res["dom"]["scripts"] == 1
+    assert res["dom"]["xss"] is True
+
+
 _PROBE = """(() => ({
   ids: Array.from(document.querySelectorAll('[id]')).map(e => e.id),
   scripts: document.querySelectorAll('script').length,
@@ -173,7 +191,13 @@ class _Browser:
         while not any(e.get("method") == method for e in events):
             if time.monotonic() > deadline:
                 raise TimeoutError(method)
-            events.append(json.loads(self.ws.recv()))
+            msg = json.loads(self.ws.recv())
+            events.append(msg)
+            if msg.get("method") == "Page.javascriptDialogOpening":
+                # a dialog blocks loading: record it, dismiss it, go on
+                self._id += 1
+                self.ws.send(json.dumps({"id": self._id, "method": "Page.handleJavaScriptDialog",
+                                         "params": {"accept": True}}))
 
     def _page_target(self, port: int) -> dict:
         deadline = time.monotonic() + 30
