@@ -387,3 +387,12 @@ def test_rank_uniformity_flags_piled_up_ranks_and_passes_flat_ones():
     assert rank_uniformity(flat, n_draws=99, bins=10)["p_value"] > 0.99
     piled = np.r_[np.zeros(150, dtype=int), np.arange(50)]  # an over-confident posterior
     assert rank_uniformity(piled, n_draws=99, bins=10)["p_value"] < 1e-6
+
+
+def test_only_the_terms_named_in_vary_get_taxon_deviations():
+    sim = _nested_data()
+    spec = parse_spec({"taxa": {"levels": "innermost", "vary": ["exponent"]}}, name="v")
+    names = set(build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0).named_vars)
+    assert "taxon_exponent__family" in names
+    assert not any(n.startswith(("taxon_intercept__", "intercept_sd__")) for n in names)
+    assert "taxon_exponent__order" not in names

@@ -132,11 +132,13 @@ def build_model(
             sigma = size.sigma
         centred_size = size.value - log_size_ref
 
-        a = _taxon_terms("intercept", intercept, inputs, param, pri["intercept_sd"]["sd"])
+        a = intercept
+        if "intercept" in spec.taxa["vary"]:
+            a = _taxon_terms("intercept", intercept, inputs, param, pri["intercept_sd"]["sd"])
         b = exponent
         if "exponent" in spec.taxa["vary"]:
             b = _taxon_terms("exponent", exponent, inputs, param, pri["exponent_sd"]["sd"])
-        mu = a + b * centred_size if inputs.taxa else intercept + exponent * centred_size
+        mu = a + b * centred_size
         if curvature is not None:
             c = curvature
             if spec.curvature == "shared_and_taxa":
