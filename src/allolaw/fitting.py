@@ -6,10 +6,12 @@ and prior predictive draws, and the observed and constant data. :func:`fit_datas
 ``fit`` stage: it reads a prepared dataset and a model spec, fits, records how the fit was made
 and writes ``results/<dataset>/<model>/posterior.nc`` atomically.
 
-Backends: ``pymc`` (PyMC's own NUTS, pytensor C code), ``numpyro`` (JAX), ``nutpie`` (Rust,
-numba-compiled log density, low-rank mass-matrix adaptation). ``auto`` is :data:`AUTO_BACKEND`,
-chosen from ``benchmarks/speed.py`` on the project machine. A backend that fails (missing
-library, compile error) falls back to ``pymc``; the failure is logged and kept in the attributes.
+Backends: ``pymc`` (PyMC's own NUTS, pytensor C code), ``numpyro`` (JAX), ``nutpie`` (Rust
+sampler with low-rank mass-matrix adaptation; log density compiled with JAX, which uses the
+persistent compile cache, or with numba when ``ALLOLAW_NUTPIE_BACKEND=numba``). ``auto`` is
+:data:`AUTO_BACKEND`, chosen from ``benchmarks/speed.py`` on the project machine. A backend
+that fails (missing library, compile error) falls back to ``pymc``; the failure is logged and
+kept in the attributes.
 """
 
 from __future__ import annotations
@@ -51,10 +53,13 @@ log = logging.getLogger(__name__)
 BACKENDS = ("pymc", "numpyro", "nutpie")
 
 #: What ``backend="auto"`` means on this project's machine (see ``benchmarks/README.md``).
-AUTO_BACKEND = "numpyro"
+AUTO_BACKEND = "nutpie"
 
 #: The observed variable whose pointwise log-likelihood is kept (model comparison uses it).
 OBSERVED = "trait"
+
+#: How nutpie compiles the log density (see benchmarks/README.md for the measured choice).
+_NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BACKEND", "jax")}
 
 _VERSION_PACKAGES = (
     "pymc",
@@ -341,7 +346,10 @@ def _sample(
         kwargs["nuts_sampler_kwargs"] = {
             "cores": max(1, threads),
             "low_rank_modified_mass_matrix": True,
+            **_NUTPIE_COMPILE,
         }
+        if _NUTPIE_COMPILE.get("backend") == "jax":
+            _apply_jax_cache()
     log.info("fit: %s sampling started", backend)
     start = time.perf_counter()
     idata = pm.sample(**kwargs)
