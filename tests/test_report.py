@@ -599,6 +599,7 @@ def test_index_shows_each_dataset_worst_verdict_and_benchmark_totals(rendered, t
     assert sorted(r[0] for r in body) == ["demo/fit_taxa_errors", "demo/prepare"]
     assert "2 jobs, 13.2 s of wall time" in html  # 12.5 + 0.75 = 13.25 → 13.2 (round half even)
     assert "largest peak memory 512.3 MB" in html
+    assert tables["table-benchmarks-datasets"][1] == ["demo", "2", "13.2", "512.3"]
     frame = report.read_benchmarks(logs)
     assert frame["s"].sum() == pytest.approx(13.25)
 

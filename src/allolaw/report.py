@@ -142,6 +142,8 @@ def render_index(config: dict[str, Any], *, logs_dir: str | Path = "logs") -> Pa
                 "href": paths.report_path(".", dataset).name,
                 "report_exists": paths.report_path(config["reports_dir"], dataset).is_file(),
                 "headline": s["headline"],
+                "curvature": (s["curvature"] or {}).get("answer"),
+                "breakpoint": (s["breakpoint"] or {}).get("answer"),
                 "worst": s["worst_verdict"],
                 "n_missing": len(s["missing"]),
             }
@@ -157,8 +159,19 @@ def render_index(config: dict[str, Any], *, logs_dir: str | Path = "logs") -> Pa
         if not bench.empty
         else None
     )
+    per_dataset = []
+    if not bench.empty:
+        for name, group in bench.groupby("dataset", sort=True):
+            per_dataset.append({
+                "dataset": name or "(batch)",
+                "jobs": len(group),
+                "seconds": float(group["s"].sum()),
+                "max_rss": float(group["max_rss"].max()) if group["max_rss"].notna().any()
+                else None,
+            })
     html = _environment().get_template("index.html.j2").render(
         rows=rows,
+        per_dataset=per_dataset,
         bench=bench_rows,
         totals=totals,
         logs_dir=str(Path(logs_dir) / "benchmarks"),
