@@ -608,3 +608,36 @@ def test_index_warns_when_no_benchmark_files_exist(rendered, tmp_path):
     config, _, _ = rendered
     html = report.render_index(config, logs_dir=tmp_path / "nothing").read_text(encoding="utf-8")
     assert 'id="no-benchmarks"' in html
+
+
+def test_check_file_written_by_the_diagnostics_stage_renders_every_diagnostic(tmp_path):
+    # The check JSON comes from allolaw.diagnostics itself on a deliberately broken
+    # hand-built posterior (one chain shifted by 5 posterior SDs, 12 divergences).
+    from allolaw.diagnostics import check_fit, predictive_checks
+    from allolaw.io import write_json
+    from allolaw.testing.posteriors import line_posterior
+
+    config = build_results(tmp_path)
+    idata = line_posterior(seed=5, chains=2, draws=300, shift_chain=5.0, n_divergent=12)
+    result, findings = check_fit(idata)
+    payload = {"dataset": "demo", "model": PRIMARY, "verdict": result.verdict,
+               "diagnostics": result.to_list(), "findings": findings, "refit": None,
+               "ppc": predictive_checks(idata)}
+    write_json(Path(config["results_dir"]) / "demo" / "checks" / f"{PRIMARY}.json", payload)
+    html = report.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    assert result.verdict == "fail"
+    assert f'id="failed-{PRIMARY}"' in html
+    section = html[html.index(f'id="checks-{PRIMARY}"'):html.index(f'id="checks-{CURVED}"')]
+    rows = {r[0]: r for r in _tables_rows(section)}
+    for diag in result.diagnostics:
+        assert diag.name in rows, diag.name
+        assert rows[diag.name][3] == diag.status
+    for finding in findings:
+        assert finding.split(":")[0] in unescape(section)
+    assert "LOO-PIT" in section
+
+
+def _tables_rows(fragment: str) -> list[list[str]]:
+    parser = _Tables()
+    parser.feed(fragment.replace('<table class="diagnostics">', '<table id="diag">', 1))
+    return [[unescape(c) for c in r] for r in parser.tables.get("diag", [])[1:]]
