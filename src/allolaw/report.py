@@ -106,7 +106,6 @@ def render_dataset_report(config: dict[str, Any], dataset: str) -> Path:
     """
     start = time.perf_counter()
     summary = summarise_dataset(config, dataset, figures=True)
-    summary["render_seconds"] = None
     html = _environment().get_template("dataset.html.j2").render(**summary)
     elapsed = time.perf_counter() - start
     html = html.replace("__RENDER_SECONDS__", f"{elapsed:.1f}")
@@ -836,6 +835,7 @@ def _footer(
     models: list[dict[str, Any]],
     *,
     prepared: dict[str, Any] | None = None,
+    logs_dir: str | Path = "logs",
 ) -> dict[str, Any]:
     versions = next((m["versions"] for m in models if m["versions"]), None)
     versions_source = "recorded in the fit" if versions else "installed when this page was made"
@@ -850,6 +850,10 @@ def _footer(
     data_hashes = [(s["file"], s.get("sha256", "")) for s in (prepared or {}).get("sources", [])]
     fit_hashes = sorted({m["data_sha256"] for m in models if m["data_sha256"]})
     fit_seconds = [float(m["wall_seconds"]) for m in models if m["wall_seconds"] is not None]
+    jobs = read_benchmarks(logs_dir)
+    if dataset is not None and not jobs.empty:
+        jobs = jobs[jobs["dataset"] == dataset]
+    job_seconds = (len(jobs), float(jobs["s"].sum())) if dataset and not jobs.empty else None
     target = f"reports/{dataset}.html" if dataset else "reports/index.html"
     command = (
         f"snakemake --cores 2 {target}" if dataset else "snakemake --cores 2"
@@ -869,6 +873,7 @@ def _footer(
         "data_hashes": data_hashes,
         "fit_hashes": fit_hashes,
         "fit_seconds": sum(fit_seconds) if fit_seconds else None,
+        "job_seconds": job_seconds,
         "command": command,
         "by_hand": by_hand,
     }
