@@ -262,3 +262,19 @@ def test_demo_datasets_give_the_true_exponent_the_highest_probability(tmp_path, 
     rows = _points(table)
     print(rows[["hypothesis", "log_bf", "posterior_prob"]].to_string())
     assert rows["posterior_prob"].idxmax() == pytest.approx(truth["exponent"], abs=1e-3)
+
+
+def test_a_prior_dependent_conclusion_is_flagged_and_stated():
+    # Weak data (4 points): the point value and "another value" are near even odds and the
+    # closed-form probabilities under prior SD × 2 tip the balance (Dickey 1971 closed form).
+    settings = _settings([0.75])
+    base = conjugate_line_posterior(seed=0, n_obs=4, sigma=0.8, true_exponent=0.9)
+    table = compare_hypotheses(base.idata, _spec(0.75, 0.5), settings)
+    doubled = conjugate_line_posterior(seed=0, n_obs=4, sigma=0.8, true_exponent=0.9,
+                                       prior_sd=1.0)
+    exact = 1 / (1 + math.exp(-doubled.log_bf(0.75)))
+    row = _points(table).loc[0.75]
+    assert row["posterior_prob"] < 0.5 < exact
+    assert row["posterior_prob_prior_double"] == pytest.approx(exact, abs=0.02)
+    assert row["conclusion_changes"]
+    assert "conclusion changes" in row["note"]

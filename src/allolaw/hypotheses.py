@@ -558,7 +558,17 @@ def _hypothesis_block(
     nearest = np.argmin(np.abs(draws[:, None] - values[None, :]), axis=1) if named else None
     top = {f: int(np.argmax(p)) for f, p in probs.items()}
     changes = any(t != top[1.0] for t in top.values())
-    sens_note = _sensitivity_note(weight_k)
+    labels = [h[0] for h in named] + ["another value"]
+    scaled = ", ".join(f"×{f:g}" for f in weights if f != 1.0)
+    if changes:
+        moved = ", ".join(f"{labels[t]} with prior SD ×{f:g}" for f, t in top.items()
+                          if t != top[1.0])
+        statement = (f"conclusion changes with the exponent prior: most probable is "
+                     f"{labels[top[1.0]]}, but {moved}")
+    else:
+        statement = (f"conclusion unchanged with the exponent prior SD {scaled}: most "
+                     f"probable stays {labels[top[1.0]]}")
+    sens_note = "; ".join(s for s in (statement, _sensitivity_note(weight_k)) if s)
     for i, (name, value, weight) in enumerate(named):
         interval = est.cdf(value + delta) - est.cdf(value - delta)
         rows.append(_row(name, value, "point", weight, log_bfs[1.0][i], probs[1.0][i], interval,
