@@ -1,9 +1,10 @@
 """Tests for the Snakemake workflow: profiles, resume after a kill, reproducibility, logs.
 
 Every run happens in a fresh working folder under pytest's tmp dir (a copy of the Snakefile,
-workflow/, config/, models/ and data/ with a two-dataset batch), so the real results/ is never
-touched. The end-to-end runs are marked ``slow`` and ``mcmc``: each runs the whole pipeline
-with tiny sampler settings. The profile and atomic-write tests are fast and run by default.
+workflow/, config/, models/ and data/ with a small batch of demo datasets), so the real
+results/ is never touched. The end-to-end runs are marked ``slow`` and ``mcmc``: each runs the
+whole pipeline with tiny sampler settings. The profile and atomic-write tests are fast and run
+by default.
 """
 
 from __future__ import annotations
@@ -142,7 +143,7 @@ def test_fit_stage_killed_while_writing_leaves_no_posterior(tmp_path: Path) -> N
 @pytest.fixture(scope="module")
 def reference_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The small batch run once, uninterrupted, with the local profile."""
-    work = wr.make_workdir(tmp_path_factory.mktemp("reference"))
+    work = wr.make_workdir(tmp_path_factory.mktemp("reference"), wr.ONE_DATASET)
     out = wr.run_batch(work, "--profile", str(PROFILES / "local"))
     assert out.returncode == 0, out.stdout[-5000:]
     return work
@@ -151,7 +152,7 @@ def reference_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
 @pytest.mark.slow
 @pytest.mark.mcmc
 def test_every_rule_writes_its_log_and_benchmark(reference_run: Path) -> None:
-    expected = wr.expected_logs()
+    expected = wr.expected_logs(wr.ONE_DATASET)
     missing = [str(p) for p in expected if not (reference_run / p).is_file()]
     assert not missing, f"missing log/benchmark files: {missing}"
     for path in expected:
@@ -176,7 +177,7 @@ def test_finished_batch_has_nothing_left_to_do(reference_run: Path) -> None:
 def test_rerun_with_same_seed_gives_byte_identical_tables(
     reference_run: Path, tmp_path: Path
 ) -> None:
-    work = wr.make_workdir(tmp_path / "again")
+    work = wr.make_workdir(tmp_path / "again", wr.ONE_DATASET)
     out = wr.run_batch(work, "--profile", str(PROFILES / "local"))
     assert out.returncode == 0, out.stdout[-5000:]
     wr.assert_same_results(reference_run, work)
@@ -187,7 +188,7 @@ def test_rerun_with_same_seed_gives_byte_identical_tables(
 def test_batch_killed_during_a_fit_resumes_to_the_same_outputs(
     reference_run: Path, tmp_path: Path
 ) -> None:
-    work = wr.make_workdir(tmp_path / "resume")
+    work = wr.make_workdir(tmp_path / "resume", wr.ONE_DATASET)
     proc = wr.start_batch(work, "--profile", str(PROFILES / "local"))
     try:
         running = wr.wait_for_fit_sampling(work, proc, timeout=600)

@@ -21,6 +21,7 @@ import xarray as xr
 import yaml
 
 __all__ = [
+    "ONE_DATASET",
     "QUICK",
     "REPO",
     "SMALL_BATCH",
@@ -40,9 +41,11 @@ __all__ = [
 
 REPO = Path(__file__).resolve().parents[1]
 
-# Two demo datasets x two models: small enough for a test, big enough to have one job of every
-# rule per dataset and two fit jobs running side by side.
+# Two demo datasets x two models (the cluster test): small enough for a test, big enough to
+# have one job of every rule per dataset and several jobs queued at once.
 SMALL_BATCH = {"cell_scaling": ["pooled", "taxa"], "tree_biomass": ["pooled", "taxa"]}
+# One dataset x two models (the local resume and reproducibility tests, which run it 3 times).
+ONE_DATASET = {"cell_scaling": ["pooled", "taxa"]}
 
 # Sampler overrides merged over config.yaml with --configfile (the same path users take); tiny
 # chains, so checks may warn or fail on ESS, which is fine here: the tests compare runs.
@@ -55,8 +58,8 @@ _GROUPS = ("posterior", "sample_stats", "log_likelihood", "posterior_predictive"
 _CLOCK_VARS = re.compile(r"time|perf_counter")
 
 
-def make_workdir(dest: Path) -> Path:
-    """Copy the workflow, models and demo data to ``dest`` with the two-dataset batch."""
+def make_workdir(dest: Path, batch: dict[str, list[str]] = SMALL_BATCH) -> Path:
+    """Copy the workflow, models and demo data to ``dest`` with a batch of demo datasets."""
     dest.mkdir(parents=True, exist_ok=True)
     shutil.copy2(REPO / "Snakefile", dest / "Snakefile")
     for folder in ("workflow", "models", "data"):
@@ -65,7 +68,7 @@ def make_workdir(dest: Path) -> Path:
     shutil.copy2(REPO / "config" / "schema.yaml", dest / "config" / "schema.yaml")  # follows link
     config = yaml.safe_load((REPO / "config" / "config.yaml").read_text(encoding="utf-8"))
     datasets = {}
-    for name, models in SMALL_BATCH.items():
+    for name, models in batch.items():
         entry = dict(config["datasets"][name])
         entry["models"] = list(models)
         entry["primary_model"] = models[-1]
@@ -157,10 +160,10 @@ def planned_jobs(dry_run_output: str) -> list[dict]:
     return jobs
 
 
-def expected_logs() -> list[Path]:
-    """The log and benchmark files the rule files declare for the small batch."""
+def expected_logs(batch: dict[str, list[str]]) -> list[Path]:
+    """The log and benchmark files the rule files declare for ``batch``."""
     paths = [Path("logs/index.log")]  # render_index: a log only (it costs no time)
-    for dataset, models in SMALL_BATCH.items():
+    for dataset, models in batch.items():
         stems = ["prepare", "compare", "report"]
         stems += [f"{stage}_{m}" for m in models for stage in ("fit", "check")]
         paths += [Path("logs") / dataset / f"{s}.log" for s in stems]
