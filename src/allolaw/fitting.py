@@ -162,6 +162,8 @@ def fit_model(
         pm.compute_log_likelihood(
             idata, var_names=[OBSERVED], model=model, progressbar=False
         )
+        log.info("fit: log-likelihood of %r in %.1f s", OBSERVED, time.perf_counter() - start)
+        phase = time.perf_counter()
         pm.sample_posterior_predictive(
             idata,
             var_names=[OBSERVED],
@@ -169,7 +171,10 @@ def fit_model(
             progressbar=False,
             extend_inferencedata=True,
         )
+        log.info("fit: posterior predictive in %.1f s", time.perf_counter() - phase)
+        phase = time.perf_counter()
         prior = pm.sample_prior_predictive(draws=prior_draws, random_seed=int(seeds[2]))
+        log.info("fit: %d prior draws in %.1f s", prior_draws, time.perf_counter() - phase)
     for group in ("warmup_posterior", "warmup_sample_stats"):  # nutpie keeps the warm-up
         if group in idata.groups():
             delattr(idata, group)
@@ -177,7 +182,7 @@ def fit_model(
         if group in prior.groups() and group not in idata.groups():
             idata.add_groups({group: getattr(prior, group)})
     predictive_s = time.perf_counter() - start
-    log.info("fit: log-likelihood and predictive draws in %.1f s", predictive_s)
+    log.info("fit: log-likelihood and predictive draws in %.1f s in all", predictive_s)
 
     idata.attrs.update(
         {
