@@ -23,6 +23,10 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        # mkstemp makes the file private (0600); give it the mode a plain open() would.
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp_path, 0o666 & ~umask)
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():
