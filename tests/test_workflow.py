@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 import signal
+import stat
 import subprocess
 import sys
 import textwrap
@@ -21,6 +22,7 @@ import pytest
 import yaml
 
 import workflow_runs as wr
+from allolaw.io import write_text
 
 PROFILES = wr.REPO / "config" / "profiles"
 
@@ -135,6 +137,17 @@ def test_fit_stage_killed_while_writing_leaves_no_posterior(tmp_path: Path) -> N
     leftovers = list(fit_dir.glob(".posterior.nc.*.partial"))
     assert len(leftovers) == 1, "the kill did not land during the write"
     assert leftovers[0].read_bytes() == b"half a NetCDF file"
+
+
+def test_atomic_writes_leave_files_readable_by_others(tmp_path: Path) -> None:
+    # On a cluster the reports are read by other users of the shared file system: an output
+    # written through a private temporary file must end up with the mode open() would give it.
+    umask = os.umask(0o022)
+    try:
+        write_text(tmp_path / "report.html", "<html></html>")
+    finally:
+        os.umask(umask)
+    assert stat.S_IMODE((tmp_path / "report.html").stat().st_mode) == 0o644
 
 
 # -------------------------------------------------------------- end-to-end runs (slow, MCMC)
