@@ -480,6 +480,7 @@ def test_page_is_self_contained_and_small(rendered):
     assert "@import" not in lowered
     assert "@media print" in html
     assert path.stat().st_size < 5_000_000
+    assert path.stat().st_mode & 0o044 == 0o044  # readable by others, unlike a temp file
 
 
 def test_methods_paragraph_and_reproducibility_footer(rendered):

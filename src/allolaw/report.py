@@ -19,7 +19,9 @@ import datetime as dt
 import json
 import logging
 import math
+import os
 import platform
+import re
 import time
 from importlib import metadata
 from pathlib import Path
@@ -31,7 +33,7 @@ from jinja2 import Environment, PackageLoader, StrictUndefined
 from markupsafe import Markup
 
 from allolaw import __version__, paths, plots
-from allolaw.config import config_sha256, dataset_config
+from allolaw.config import config_sha256, dataset_config, hypotheses_config
 from allolaw.io import write_text
 
 __all__ = ["read_benchmarks", "render_dataset_report", "render_index", "summarise_dataset"]
@@ -111,6 +113,7 @@ def render_dataset_report(config: dict[str, Any], dataset: str) -> Path:
     html = html.replace("__RENDER_SECONDS__", f"{elapsed:.1f}")
     out = paths.report_path(config["reports_dir"], dataset)
     write_text(out, html)
+    _readable(out)
     log.info("report %s: wrote %s (%.0f kB, %.1f s)", dataset, out, len(html) / 1e3, elapsed)
     return out
 
@@ -181,6 +184,7 @@ def render_index(config: dict[str, Any], *, logs_dir: str | Path = "logs") -> Pa
     )
     out = paths.index_report_path(config["reports_dir"])
     write_text(out, html)
+    _readable(out)
     log.info("index: wrote %s", out)
     return out
 
@@ -303,6 +307,7 @@ def summarise_dataset(
     context["headline"] = _headline(
         primary, fits.get(primary), hyp, context["curvature"], context["breakpoint"],
         model_info, units,
+        delta=hypotheses_config(config, dataset).get("interval_halfwidth"),
     )
     context["methods"] = _methods(config, dataset, model_info, hyp)
     context["footer"] = _footer(config, dataset, model_info, prepared=prepared)
@@ -389,6 +394,8 @@ def _units(ds: dict[str, Any], prepared: dict[str, Any] | None) -> dict[str, Any
         "trait": trait_unit,
         "size_label": size_label,
         "trait_label": trait_label,
+        "size_display": _unit_text(size_unit),
+        "trait_display": _unit_text(trait_unit),
         "x_axis": f"{size_label} ({_unit_text(size_unit)}, log scale)",
         "y_axis": f"{trait_label} ({_unit_text(trait_unit)}, log scale)",
         "reference_size": ref,
@@ -397,7 +404,10 @@ def _units(ds: dict[str, Any], prepared: dict[str, Any] | None) -> dict[str, Any
 
 
 def _unit_text(unit: str) -> str:
-    return unit.replace("**2", "²").replace("**3", "³").replace("um", "µm")
+    # pint spellings to print: um**3 → µm³ (the "u" prefix is micro)
+    text = re.sub(r"\*\*2\b", "²", unit)
+    text = re.sub(r"\*\*3\b", "³", text)
+    return re.sub(r"\bu(?=[a-zA-Z])", "µ", text)
 
 
 # --- sections -------------------------------------------------------------------------------
@@ -740,17 +750,24 @@ def _headline(
     breakpoint: dict[str, Any] | None,
     models: list[dict[str, Any]],
     units: dict[str, Any],
+    *,
+    delta: float | None = None,
 ) -> dict[str, Any]:
     out: dict[str, Any] = {"primary": primary}
     sentences = []
     if idata is not None and "exponent" in idata.posterior:
         draws = np.asarray(idata.posterior["exponent"].values, dtype=float).reshape(-1)
         q05, q50, q95 = (float(v) for v in np.quantile(draws, [0.05, 0.5, 0.95]))
-        out["exponent"] = {"q05": q05, "q50": q50, "q95": q95}
+        out["exponent"] = {"q05": q05, "q50": q50, "q95": q95, "above": None}
+        if "exponent_above" in idata.posterior:
+            above = np.asarray(idata.posterior["exponent_above"].values, dtype=float).ravel()
+            out["exponent"]["above"] = [float(v) for v in np.quantile(above, [0.05, 0.5, 0.95])]
         ref = units.get("reference_size")
-        at = f" at {_fmt(ref)} {_unit_text(units['size'])}" if ref else ""
+        at = f" at {_fmt(ref)} {units['size_display']}" if ref else ""
+        below = " (below the break)" if out["exponent"]["above"] else ""
         sentences.append(
-            f"The population exponent{at} is {q50:.3f} (90% interval {q05:.3f} to {q95:.3f})."
+            f"The population exponent{at}{below} is {q50:.3f} (90% interval {q05:.3f} to "
+            f"{q95:.3f})."
         )
     else:
         out["exponent"] = None
@@ -775,6 +792,7 @@ def _headline(
                 f"({float(best['value']):g}) with posterior probability "
                 f"{float(best['posterior_prob']):.3f}."
             )
+    out["delta"] = delta
     out["curvature"] = curvature
     out["breakpoint"] = breakpoint
     out["failed"] = [m["name"] for m in models if m["verdict"] == "fail"]
@@ -1089,6 +1107,14 @@ def _expected_log_trait_fallback(
     if "curvature" in post:
         out = out + draws("curvature")[:, None] * dx**2
     return out
+
+
+def _readable(path: Path) -> None:
+    # The atomic write's temporary file is private (0600); a report is for reading: 0644
+    # less the umask, as for any new file.
+    umask = os.umask(0)
+    os.umask(umask)
+    path.chmod(0o666 & ~umask)
 
 
 def _svg(text: str) -> Markup:
