@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import re
 from html import unescape
 from html.parser import HTMLParser
@@ -480,7 +481,9 @@ def test_page_is_self_contained_and_small(rendered):
     assert "@import" not in lowered
     assert "@media print" in html
     assert path.stat().st_size < 5_000_000
-    assert path.stat().st_mode & 0o044 == 0o044  # readable by others, unlike a temp file
+    umask = os.umask(0)
+    os.umask(umask)
+    assert path.stat().st_mode & 0o777 == 0o666 & ~umask  # as a new file, not 0600 temp
 
 
 def test_methods_paragraph_and_reproducibility_footer(rendered):
