@@ -93,6 +93,8 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
         table = pd.concat([table, absent], ignore_index=True) if len(table) else absent
         table = table.reindex(columns=COMPARISON_COLUMNS)
     table["dataset"] = dataset
+    for column in ("rank", "n_bad_k"):
+        table[column] = table[column].astype("Int64")  # integers, empty for an absent fit
     _write_csv(paths.comparison_path(results, dataset), table[COMPARISON_COLUMNS])
 
     settings = hypotheses_config(config, dataset)
