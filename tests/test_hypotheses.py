@@ -236,6 +236,7 @@ def test_parametric_fit_prefers_student_t_for_heavy_tails_and_skew_normal_for_sk
 @pytest.mark.parametrize(("dataset", "model"), [
     ("tree_biomass", "taxa_errors_curved"),
     ("cell_scaling", "breakpoint"),
+    ("island_metabolism", "taxa_errors"),
 ])
 def test_demo_datasets_give_the_true_exponent_the_highest_probability(tmp_path, dataset, model):
     # Known truth: data/demo/truth.json of the seeded invented demo (tree: 8/3 at the

@@ -184,7 +184,6 @@ class DensityEstimate:
     cond_mean: np.ndarray | None = None  # (S,) Rao–Blackwellised conditional means
     cond_sd: np.ndarray | None = None
     rebuild: Any = None  # callable(prior_sd) -> (mean, sd) for the population node
-    self_check: str = ""
     _fits: dict[int, Any] = field(default_factory=dict, repr=False)
 
     def parametric(self, weights: np.ndarray | None = None) -> Any:
@@ -282,7 +281,7 @@ class _Tree:
                   for lvl in levels}
         species_index: dict[str, np.ndarray] = {}
         if const is not None:
-            for lvl in list(labels) + _other_levels(post, const):
+            for lvl in list(labels) + _index_levels(const):
                 name = f"taxon_index__{lvl}"
                 if name in const:
                     species_index[lvl] = np.asarray(const[name].values, dtype=int)
@@ -299,7 +298,7 @@ class _Tree:
         return cls(levels=levels, labels=labels, species_index=species_index, parent=parent)
 
 
-def _other_levels(post: Any, const: Any) -> list[str]:
+def _index_levels(const: Any) -> list[str]:
     return [str(n).removeprefix("taxon_index__") for n in const.data_vars
             if str(n).startswith("taxon_index__")]
 
