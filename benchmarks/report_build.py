@@ -2,6 +2,7 @@
 
     .venv/bin/python benchmarks/report_build.py                       # config/config.yaml
     .venv/bin/python benchmarks/report_build.py --config config/config.yaml --repeat 3
+    .venv/bin/python benchmarks/report_build.py --results-dir /tmp/run/results --datasets a,b
 
 Reads whatever the earlier stages left under ``results_dir`` (missing inputs only make the
 page shorter) and writes the pages into a temporary folder, so ``reports/`` is untouched.
@@ -22,8 +23,13 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--config", default="config/config.yaml")
     parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--results-dir", default=None, help="override results_dir")
+    parser.add_argument("--datasets", default=None, help="comma-separated subset")
     args = parser.parse_args()
     config = load_config(args.config)
+    if args.results_dir:
+        config["results_dir"] = args.results_dir
+    names = args.datasets.split(",") if args.datasets else sorted(config["datasets"])
     with tempfile.TemporaryDirectory() as out:
         config["reports_dir"] = out
         t0 = time.perf_counter()
@@ -31,7 +37,7 @@ def main() -> None:
 
         print(f"import allolaw.report: {time.perf_counter() - t0:.2f} s")
         print(f"{'dataset':<22}{'first s':>9}{'best s':>9}{'kB':>9}{'figures':>9}")
-        for dataset in sorted(config["datasets"]):
+        for dataset in names:
             times = []
             for _ in range(max(args.repeat, 1)):
                 start = time.perf_counter()

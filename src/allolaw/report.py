@@ -346,15 +346,32 @@ def _read_posterior(path: Path, missing: list[str], model: str) -> Any:
     if not path.is_file():
         missing.append(f"The fit of model '{model}' is missing ({path}); run 'allolaw fit'.")
         return None
-    import arviz as az
-
     try:
-        with az.rc_context({"data.load": "eager"}):
-            idata = az.from_netcdf(path)
-    except (OSError, ValueError) as err:
+        idata = _read_groups(path, ("posterior", "constant_data"))
+    except (OSError, ValueError, KeyError) as err:
         missing.append(f"The fit of model '{model}' could not be read ({path}): {err}.")
         return None
     return _squeeze_constants(idata)
+
+
+def _read_groups(path: Path, groups: tuple[str, ...]) -> Any:
+    # Only the groups the page uses (the predictive checks come from the check file): reading
+    # every group of a fit costs about twice as long (benchmarks/report_build.py).
+    import arviz as az
+    import xarray as xr
+
+    with xr.open_dataset(path, engine="h5netcdf") as root:
+        attrs = dict(root.attrs)
+    data = {}
+    for group in groups:
+        try:
+            data[group] = xr.load_dataset(path, group=group, engine="h5netcdf")
+        except OSError:
+            if group == "posterior":
+                raise
+    idata = az.InferenceData(**data)
+    idata.attrs.update(attrs)
+    return idata
 
 
 def _squeeze_constants(idata: Any) -> Any:
