@@ -203,8 +203,9 @@ class _Browser:
         deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             with contextlib.suppress(OSError, ValueError):
-                with urllib.request.urlopen(f"http://127.0.0.1:{port}/json/list",
-                                            timeout=2) as resp:
+                # no proxy: an HTTP(S)_PROXY in the environment must not catch localhost
+                opener = urllib.request.build_opener(urllib.request.ProxyHandler({}))
+                with opener.open(f"http://127.0.0.1:{port}/json/list", timeout=2) as resp:
                     targets = json.load(resp)
                 pages = [t for t in targets if t.get("type") == "page"]
                 if pages:
