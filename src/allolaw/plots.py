@@ -104,7 +104,7 @@ def scatter_law_svg(
     ys = [v for s in series for v in s.y] + [v for b in bands for v in b.mid]
     ys += _band_edges(bands)
     ax = _Axes(width, height, _log_range(xs), _log_range(ys), log_x=True, log_y=True,
-               right=190)
+               right=215)
     parts = [ax.frame(x_label, y_label, title)]
     parts.append(f'<g clip-path="url(#{ax.clip_id})">')
     for band in bands:
@@ -200,7 +200,8 @@ def line_band_svg(
     ys = [v for b in bands for v in b.mid] + [m[1] for m in marks_y]
     ys += _band_edges(bands)
     x_range = _log_range(xs) if log_x else _lin_range(xs, pad=0.0)
-    ax = _Axes(width, height, x_range, _lin_range(ys), log_x=log_x, log_y=False, right=190)
+    ax = _Axes(width, height, x_range, _lin_range(ys), log_x=log_x, log_y=False, right=215,
+               top=30 if marks_x else 18)
     parts = [ax.frame(x_label, y_label, title)]
     parts.append(f'<g clip-path="url(#{ax.clip_id})">')
     for band in bands:
@@ -231,7 +232,7 @@ def histogram_svg(
     """Histogram (e.g. LOO-PIT values) with an optional expected-count line (uniform)."""
     top = max([*counts, expected or 0, 1]) * 1.15
     ax = _Axes(width, height, (float(edges[0]), float(edges[-1])), (0.0, top), log_x=False,
-               log_y=False, right=16, left=52)
+               log_y=False, right=16, left=62)
     parts = [ax.frame(x_label, y_label, title)]
     for i, count in enumerate(counts):
         x0, x1 = ax.px(edges[i]), ax.px(edges[i + 1])
@@ -265,7 +266,7 @@ def density_overlay_svg(
     ]
     ys = [*q95, *observed, 0.0]
     ax = _Axes(width, height, _lin_range(grid, pad=0.0), (0.0, max(ys) * 1.1 or 1.0),
-               log_x=False, log_y=False, right=16, left=52)
+               log_x=False, log_y=False, right=16, left=62)
     parts = [ax.frame(x_label, "density", title)]
     for band in bands:
         parts.append(ax.band(band))
@@ -417,9 +418,13 @@ class _Axes:
               stagger: int = 0) -> str:
         px = self.px(x)
         dash_attr = f' stroke-dasharray="{dash}"' if dash else ""
+        # keep the label inside the figure: anchored at its end near the right edge
+        room = 3.2 * len(label)
+        anchor = ("end" if px + room > self.width - 4 else
+                  "start" if px - room < 4 else "middle")
         text = (
             f'<text x="{px:.1f}" y="{self.top - 4 - 12 * (stagger % 2):.1f}" '
-            f'text-anchor="middle" font-size="11" fill="{colour}">{escape(label)}</text>'
+            f'text-anchor="{anchor}" font-size="11" fill="{colour}">{escape(label)}</text>'
             if label else ""
         )
         return (
@@ -442,7 +447,7 @@ class _Axes:
                         f'stroke="{colour}" stroke-width="2"{dash}/>')
             out.append(
                 f'{mark}<text x="{x + 20}" y="{y}" font-size="11" fill="{_INK}">'
-                f"{escape(_truncate(label, 30))}</text>"
+                f"{escape(_truncate(label, 34))}</text>"
             )
             y += 16
         if len(items) > 18:

@@ -775,7 +775,8 @@ def _headline(
     if idata is not None and "exponent" in idata.posterior:
         draws = np.asarray(idata.posterior["exponent"].values, dtype=float).reshape(-1)
         q05, q50, q95 = (float(v) for v in np.quantile(draws, [0.05, 0.5, 0.95]))
-        out["exponent"] = {"q05": q05, "q50": q50, "q95": q95, "above": None}
+        out["exponent"] = {"q05": q05, "q50": q50, "q95": q95, "above": None,
+                           "curved": "curvature" in idata.posterior}
         if "exponent_above" in idata.posterior:
             above = np.asarray(idata.posterior["exponent_above"].values, dtype=float).ravel()
             out["exponent"]["above"] = [float(v) for v in np.quantile(above, [0.05, 0.5, 0.95])]
