@@ -265,11 +265,12 @@ def test_every_demo_model_fits_small_data_without_divergences(name):
         sim.data["cov_body_temp_c"] = np.linspace(295.0, 310.0, len(sim.data))
     model = build_model(sim.data, load_spec(MODELS, name), levels=sim.levels,
                         log_reference_size=0.0)
-    idata = quick_sample(model, seed=12, draws=500, tune=700, target_accept=0.95)
+    # R-hat < 1.01 needs enough draws to be a stable statistic: 2 x 1000
+    idata = quick_sample(model, seed=12, draws=1000, tune=1000, target_accept=0.95)
     assert int(idata.sample_stats["diverging"].sum()) == 0
     rhat = az.rhat(idata)
     worst = max(float(rhat[v].max()) for v in rhat.data_vars)
-    assert worst < 1.01
+    assert worst < 1.01, {v: float(rhat[v].max()) for v in rhat.data_vars}
 
 
 def _inside_90(draws: np.ndarray, value: float) -> bool:
