@@ -645,3 +645,18 @@ def _tables_rows(fragment: str) -> list[list[str]]:
     parser = _Tables()
     parser.feed(fragment.replace('<table class="diagnostics">', '<table id="diag">', 1))
     return [[unescape(c) for c in r] for r in parser.tables.get("diag", [])[1:]]
+
+
+def test_answer_of_a_breakpoint_primary_model_gives_both_exponents(tmp_path):
+    config = build_results(tmp_path)
+    config["datasets"]["demo"]["primary_model"] = BREAK
+    html = report.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    idata = az.from_netcdf(Path(config["results_dir"]) / "demo" / BREAK / "posterior.nc")
+    below = np.quantile(idata.posterior["exponent"].values.ravel(), [0.05, 0.5, 0.95])
+    above = np.quantile(idata.posterior["exponent_above"].values.ravel(), [0.05, 0.5, 0.95])
+    answer = html[html.index('id="answer"'):html.index('id="data"')]
+    assert f"Population exponent {below[1]:.3f}" in answer
+    assert (f"below the break (above it: {above[1]:.3f}, 90% interval {above[0]:.3f} to "
+            f"{above[2]:.3f})") in answer
+    # no check file for the primary model: said in the answer, not hidden
+    assert f"(no check file): {BREAK}" in answer
