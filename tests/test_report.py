@@ -510,6 +510,7 @@ def test_curvature_and_breakpoint_answers_follow_the_compare_outputs(rendered):
     # P(|diff| > δ) = 0.993 ≥ 0.95, breakpoint model absent from comparison.csv, not failed
     assert "supported — model breakpoint puts the break at 298.4 g" in brk
     assert "(90% interval 191.7 to 505.2)" in brk
+    assert "its fit has not been checked" in brk
     tables = _tables(html)
     share = dict(tables["table-curvature"])
     assert _close(share["share of between-taxon exponent variance explained by curvature "

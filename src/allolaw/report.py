@@ -733,6 +733,8 @@ def _breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] |
         answer += "; LOO prefers another model by more than 2 SE"
     if best.get("check_verdict") == "fail":
         answer += "; its checks failed"
+    elif best.get("check_verdict") in (None, "", "not checked", "missing"):
+        answer += "; its fit has not been checked"
     return {"answer": answer + ".", "supported": best["supported"], "rows": rows,
             "rule": (f"A break is called supported when P(|difference| > δ) ≥ {_BREAK_P_MIN}, "
                      f"the breakpoint model is within {_BREAK_DSE:g} SE of the best model by "
