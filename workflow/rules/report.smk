@@ -31,6 +31,8 @@ rule render_index:
         html=f"{REPORTS}/index.html",
     log:
         f"{LOGS}/index.log",
+    benchmark:
+        f"{LOGS}/benchmarks/index.tsv"
     params:
         cli=ALLOLAW,
         opts=CLI_OPTS,
