@@ -178,6 +178,17 @@ def fit_model(
     for group in ("warmup_posterior", "warmup_sample_stats"):  # nutpie keeps the warm-up
         if group in idata.groups():
             delattr(idata, group)
+    # nutpie also stores the sampler's unconstrained values (sigma_log__ …); the other backends
+    # do not. Keep only the model's own variables, so every backend gives the same posterior.
+    unconstrained = [v.name for v in model.value_vars if v.name not in model.named_vars]
+    unconstrained += [
+        n for n in idata.posterior.data_vars
+        if n.endswith("__") and n not in model.named_vars
+    ]
+    if unconstrained:
+        idata.posterior = idata.posterior.drop_vars(
+            [n for n in set(unconstrained) if n in idata.posterior]
+        )
     for group in ("prior", "prior_predictive", "observed_data", "constant_data"):
         if group in prior.groups() and group not in idata.groups():
             idata.add_groups({group: getattr(prior, group)})
