@@ -35,7 +35,6 @@ from allolaw.paths import clean_path, posterior_path, prepared_path
 
 if TYPE_CHECKING:
     import arviz as az
-    import pandas as pd
     import pymc as pm
 
 __all__ = [
@@ -250,8 +249,10 @@ def fit_dataset_model(
     wall_start = time.perf_counter()
     results = Path(config["results_dir"])
     clean_file = clean_path(results, dataset)
-    data = _read_clean(results, dataset)
-    prepared = _read_prepared(results, dataset)
+    from allolaw.intake import read_clean, read_prepared
+
+    data = read_clean(results, dataset)
+    prepared = read_prepared(results, dataset)
     levels = _levels(config, dataset, prepared)
     log_reference_size = _log_reference_size(prepared, prepared_path(results, dataset))
     spec = load_spec(config["models_dir"], model_name)
@@ -391,36 +392,6 @@ def _show_progress() -> bool:
     if os.environ.get("CI") or os.environ.get("ALLOLAW_NO_PROGRESS"):
         return False
     return sys.stderr.isatty()
-
-
-def _read_clean(results: Path, dataset: str) -> pd.DataFrame:
-    try:
-        from allolaw.intake import read_clean
-    except ImportError:
-        read_clean = None
-    if read_clean is not None:
-        return read_clean(results, dataset)
-    import pandas as pd
-
-    path = clean_path(results, dataset)
-    if not path.is_file():
-        msg = f"{path}: prepared table not found; run `allolaw prepare --dataset {dataset}` first"
-        raise UserError(msg)
-    return pd.read_csv(path)
-
-
-def _read_prepared(results: Path, dataset: str) -> dict[str, Any]:
-    try:
-        from allolaw.intake import read_prepared
-    except ImportError:
-        read_prepared = None
-    if read_prepared is not None:
-        return read_prepared(results, dataset)
-    path = prepared_path(results, dataset)
-    if not path.is_file():
-        msg = f"{path}: not found; run `allolaw prepare --dataset {dataset}` first"
-        raise UserError(msg)
-    return json.loads(path.read_text(encoding="utf-8"))
 
 
 def _levels(config: dict[str, Any], dataset: str, prepared: dict[str, Any]) -> list[str]:
