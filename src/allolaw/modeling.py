@@ -46,9 +46,9 @@ TRAIT = "trait"
 SIZE_MEASUREMENT = "measured_log_size"
 
 # auto parameterisation thresholds (see taxon_parameterisation)
-_CENTRED_MIN_SPECIES = 10
-_CENTRED_MIN_RELIABILITY = 0.9
-_CENTRED_MAX_TRAIT_ERROR_FRACTION = 0.5
+# an innermost taxon with fewer species cannot pin its own intercept and exponent: its
+# deviation is written non-centred from its parent (common practice, no source)
+_INFORMATIVE_MIN_SPECIES = 3
 
 
 def build_model(
@@ -106,7 +106,8 @@ def build_model(
        models. In Current Trends in Bayesian Methodology with Applications, CRC.
     """
     inputs = _read_inputs(data, spec, levels=levels)
-    param = taxon_parameterisation(data, spec, levels=levels)
+    param = taxon_parameterisation(data, spec, levels=levels,
+                                   log_reference_size=log_reference_size)
     pri = spec.priors
     coords: dict[str, Any] = {"species": inputs.species}
     for level, taxa in inputs.taxa.items():
@@ -120,11 +121,22 @@ def build_model(
         intercept_mean = pri["intercept"].get("mean", "auto")
         if intercept_mean == "auto":
             intercept_mean = float(np.median(inputs.log_trait))
-        intercept = pm.Normal("intercept", float(intercept_mean), pri["intercept"]["sd"])
-        exponent = pm.Normal("exponent", pri["exponent"]["mean"], pri["exponent"]["sd"])
-        curvature = None
+        varying = set(spec.taxa["vary"])
+        if spec.curvature == "shared_and_taxa":
+            varying.add("curvature")
+
+        def term(name: str, prior: dict[str, Any]) -> tuple[Any, Any]:
+            # (population value, per-species value) of one term of the law
+            if name in varying and inputs.taxa:
+                return _taxon_terms(name, prior, inputs, param, pri[f"{name}_sd"]["sd"])
+            value = pm.Normal(name, float(prior["mean"]), float(prior["sd"]))
+            return value, value
+
+        _, a = term("intercept", {"mean": intercept_mean, "sd": pri["intercept"]["sd"]})
+        exponent, b = term("exponent", pri["exponent"])
+        c = None
         if spec.curvature != "none":
-            curvature = pm.Normal("curvature", pri["curvature"]["mean"], pri["curvature"]["sd"])
+            _, c = term("curvature", pri["curvature"])
 
         sigma = _residual_sd(spec)
         size = _true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma)
@@ -132,17 +144,8 @@ def build_model(
             sigma = size.sigma
         centred_size = size.value - log_size_ref
 
-        a = intercept
-        if "intercept" in spec.taxa["vary"]:
-            a = _taxon_terms("intercept", intercept, inputs, param, pri["intercept_sd"]["sd"])
-        b = exponent
-        if "exponent" in spec.taxa["vary"]:
-            b = _taxon_terms("exponent", exponent, inputs, param, pri["exponent_sd"]["sd"])
         mu = a + b * centred_size
-        if curvature is not None:
-            c = curvature
-            if spec.curvature == "shared_and_taxa":
-                c = _taxon_terms("curvature", curvature, inputs, param, pri["curvature_sd"]["sd"])
+        if c is not None:
             mu = mu + c * centred_size**2
         if spec.breakpoint == "one":
             mu = mu + _hinge(spec, inputs, size.value, log_size_ref, exponent)
@@ -253,19 +256,27 @@ def select_levels(spec: ModelSpec, levels: list[str]) -> list[str]:
 
 
 def taxon_parameterisation(
-    data: pd.DataFrame, spec: ModelSpec, *, levels: list[str]
-) -> dict[str, str]:
-    """Choose ``centred`` or ``non-centred`` taxon deviations per level.
+    data: pd.DataFrame,
+    spec: ModelSpec,
+    *,
+    levels: list[str],
+    log_reference_size: float | None = None,
+) -> dict[str, float]:
+    """How centred the innermost taxon deviations of each varying term are written.
 
-    With ``parameterisation: auto`` a level is centred when its taxa hold a median of at
-    least 10 members (species at the innermost level used, child taxa at an outer level,
-    whose deviations are what inform the outer one), and measurement error is small: the
-    median reliability of log size (1 − sd_log_size² / var(log_size)) is at least 0.9 and
-    the median trait error SD is at most half the residual SD of a least-squares line.
-    Otherwise it is non-centred. Centred
-    forms sample better when each taxon's data pin down its deviation; non-centred ones when
-    the prior dominates (the funnel of Betancourt & Girolami 2015). The thresholds are common
-    practice, no source.
+    Returns ``{term: c}`` with ``c`` in [0, 1]: each deviation is ``sd^(1−c) · u`` with
+    ``u ~ N(0, sd^c)``, so ``c = 1`` is the centred form (best when each taxon's data pin its
+    deviation down) and ``c = 0`` the non-centred one (best when the prior dominates, the funnel
+    of Betancourt & Girolami 2015); values between are the partially non-centred forms of
+    Papaspiliopoulos et al. (2007). ``parameterisation: centred`` / ``non-centred`` fix ``c`` to
+    1 / 0. With ``auto``, ``c`` is the median over taxa of the share of a taxon's deviation
+    that its own data determine, ``τ² / (τ² + se²)`` (the complement of the shrinkage factor),
+    from a least-squares line per innermost taxon (se of its intercept at the reference size,
+    its slope, after the pooled quadratic when the spec is curved) and the between-taxon
+    variance ``τ²`` of DerSimonian & Laird (1986) within parents. Only the within-parent
+    deviations at the innermost level use ``c``: every other taxon value is drawn exactly
+    given the data-pinned means (see :func:`_taxon_terms`). Curvature deviations, which a
+    per-taxon line cannot estimate, get ``c = 0``.
 
     References
     ----------
@@ -273,35 +284,99 @@ def taxon_parameterisation(
        models. In Current Trends in Bayesian Methodology with Applications, CRC.
     .. [2] Papaspiliopoulos, O., Roberts, G. O. & Sköld, M. (2007). A general framework for
        the parametrization of hierarchical models. Statistical Science 22:59–73.
+    .. [3] DerSimonian, R. & Laird, N. (1986). Meta-analysis in clinical trials. Controlled
+       Clinical Trials 7:177–188.
     """
     used = select_levels(spec, levels)
+    terms = list(spec.taxa["vary"])
+    if spec.curvature == "shared_and_taxa":
+        terms.append("curvature")
+    if not used:
+        return {}
     choice = spec.taxa["parameterisation"]
     if choice != "auto":
-        return dict.fromkeys(used, choice)
-    small_error = True
-    x = data["log_size"].to_numpy(dtype=float)
-    y = data["log_trait"].to_numpy(dtype=float)
-    if spec.size_error in ("known", "replicates") and len(x) > 2:
-        sd_x = data["sd_log_size"].to_numpy(dtype=float)
-        reliability = 1.0 - np.nanmedian(sd_x**2) / max(np.var(x, ddof=1), 1e-12)
-        small_error &= bool(reliability >= _CENTRED_MIN_RELIABILITY)
-    if spec.trait_error in ("known", "replicates") and len(x) > 2:
-        slope, icept = np.polyfit(x, y, 1)
-        resid_sd = float(np.std(y - icept - slope * x, ddof=2))
-        sd_y = float(np.nanmedian(data["sd_log_trait"].to_numpy(dtype=float)))
-        small_error &= bool(sd_y <= _CENTRED_MAX_TRAIT_ERROR_FRACTION * resid_sd)
-    if spec.size_error == "ratio":
-        small_error = False
+        return dict.fromkeys(terms, 1.0 if choice == "centred" else 0.0)
+    parent = used[-2] if len(used) > 1 else None
+    estimates = _per_taxon_lines(data, spec, used[-1], parent, log_reference_size)
     out = {}
-    for k, level in enumerate(used):
-        if k + 1 < len(used):
-            # an outer taxon's deviation is informed by its child taxa, not its species
-            per_taxon = data.groupby(level, sort=False)[used[k + 1]].nunique()
-        else:
-            per_taxon = data.groupby(level, sort=False).size()
-        many = float(per_taxon.median()) >= _CENTRED_MIN_SPECIES
-        out[level] = "centred" if (many and small_error) else "non-centred"
+    for term in terms:
+        if term == "curvature" or estimates is None:
+            out[term] = 0.0
+            continue
+        est, se = estimates[term]
+        out[term] = round(_data_share(est, se, estimates["parent"]), 3)
     return out
+
+
+def _per_taxon_lines(
+    data: pd.DataFrame,
+    spec: ModelSpec,
+    level: str,
+    parent: str | None,
+    log_reference_size: float | None,
+) -> dict[str, Any] | None:
+    # least-squares intercept (at the reference size; the mean log size of the table if none
+    # is given) and slope per taxon, with standard errors; taxa with fewer than 3 species or no
+    # size spread are left out
+    centre = log_reference_size
+    if centre is None:
+        centre = float(np.mean(data["log_size"].to_numpy(dtype=float)))
+    y_all = data["log_trait"].to_numpy(dtype=float)
+    bend = np.zeros(len(data))
+    if spec.curvature != "none" and len(data) > 3:
+        # a curved law makes straight per-taxon slopes differ by size range; take out the
+        # pooled quadratic first
+        dx = data["log_size"].to_numpy(dtype=float) - centre
+        bend = np.polyfit(dx, y_all, 2)[0] * dx**2
+    bend_of = pd.Series(bend, index=data.index)
+    rows: dict[str, list[Any]] = {"a": [], "va": [], "b": [], "vb": [], "parent": []}
+    sse, dof = 0.0, 0
+    for _, group in data.groupby(level, sort=False):
+        x = group["log_size"].to_numpy(dtype=float) - centre
+        y = group["log_trait"].to_numpy(dtype=float) - bend_of.loc[group.index].to_numpy()
+        n = len(x)
+        sxx = float(np.sum((x - x.mean()) ** 2))
+        if n < 3 or sxx <= 1e-12:
+            continue
+        slope = float(np.sum((x - x.mean()) * (y - y.mean())) / sxx)
+        icept = float(y.mean() - slope * x.mean())
+        sse += float(np.sum((y - icept - slope * x) ** 2))
+        dof += n - 2
+        rows["parent"].append(str(group[parent].iloc[0]) if parent else "")
+        rows["a"].append(icept)
+        rows["va"].append(1.0 / n + x.mean() ** 2 / sxx)
+        rows["b"].append(slope)
+        rows["vb"].append(1.0 / sxx)
+    if len(rows["a"]) < 2:
+        return None
+    # one residual variance pooled over taxa: per-taxon estimates from a handful of species
+    # are too noisy for the weights (they inflate Q and so τ²)
+    pooled = sse / max(dof, 1)
+    arr = {k: np.asarray(v) for k, v in rows.items()}
+    return {"intercept": (arr["a"], np.sqrt(pooled * arr["va"])),
+            "exponent": (arr["b"], np.sqrt(pooled * arr["vb"])), "parent": arr["parent"]}
+
+
+def _data_share(estimate: np.ndarray, se: np.ndarray, parent: np.ndarray) -> float:
+    # DerSimonian–Laird moment estimate of the between-taxon variance within parents (Q summed
+    # over parents, k − P degrees of freedom), then the median share τ²/(τ² + se²) of a
+    # taxon's deviation that its own data determine
+    w = 1.0 / np.maximum(se, 1e-12) ** 2
+    q, dof, denom = 0.0, 0, 0.0
+    for label in np.unique(parent):
+        sel = parent == label
+        if sel.sum() < 2:
+            continue
+        ws, es = w[sel], estimate[sel]
+        q += float(np.sum(ws * (es - np.sum(ws * es) / np.sum(ws)) ** 2))
+        dof += int(sel.sum()) - 1
+        denom += float(np.sum(ws) - np.sum(ws**2) / np.sum(ws))
+    if dof == 0 or denom <= 0.0:
+        return 0.0
+    tau2 = max(0.0, (q - dof) / denom)
+    if tau2 <= 0.0:
+        return 0.0
+    return float(np.median(tau2 / (tau2 + se**2)))
 
 
 _TAXON_TERMS = ("intercept", "exponent", "curvature")
@@ -500,23 +575,165 @@ def _true_log_size(spec: ModelSpec, inputs: _Inputs, log_size_obs: Any, *, sigma
 
 
 def _taxon_terms(
-    term: str, population: Any, inputs: _Inputs, param: dict[str, str], sd_scale: float
-) -> Any:
-    """Per-species value of ``term``: population plus deviations along each taxon's path."""
-    if not inputs.taxa:
-        return population
-    total = None
-    level = ""
-    for level, taxa in inputs.taxa.items():
-        sd = pm.HalfNormal(f"{term}_sd__{level}", sigma=sd_scale)
-        if param.get(level, "non-centred") == "centred":
-            dev = pm.Normal(f"{term}_dev__{level}", 0.0, sd, dims=level)
+    term: str,
+    prior: dict[str, float],
+    inputs: _Inputs,
+    param: dict[str, float],
+    sd_scale: float,
+) -> tuple[Any, Any]:
+    """Population value of ``term`` and its per-species value through the taxon tree.
+
+    The model is the usual nested one: population ``p ~ N(m0, s0)``, each outermost taxon
+    ``N(p, s_1)``, each inner taxon ``N(parent, s_l)``. Only the innermost taxon values enter
+    the likelihood, so the sampler is given the quantities the data pin down, and everything
+    else as an exact conditional draw (written by hand: no library offers this form):
+
+    - the mean of each parent's children at the innermost level, ``<term>_group_mean``
+      (multivariate normal with the covariance the tree implies, marginal over every upper
+      value);
+    - the children's deviations from their parent's mean, in an orthonormal zero-sum basis per
+      parent, ``<term>_dev__<level>`` (centred) or ``<term>_z__<level>`` (non-centred);
+    - the population and upper taxon values given the group means, as standard normals
+      ``<term>_w`` mapped through the conditional mean and Cholesky factor (Gaussian
+      conditioning in information form, stable as any SD goes to zero).
+
+    The joint distribution is exactly that of the nested model; what changes is the geometry:
+    with few taxa at a level, the population value's posterior width scales with the taxon SD
+    (a funnel that neither the centred nor the non-centred form removes), while here the
+    sampler sees only ``<term>_w`` ~ N(0, 1) independent of the data given the rest.
+    """
+    levels = list(inputs.taxa)
+    inner = levels[-1]
+    inner_taxa = inputs.taxa[inner]
+    m0, s0 = float(prior["mean"]), float(prior["sd"])
+    sds = [pm.HalfNormal(f"{term}_sd__{level}", sigma=sd_scale) for level in levels]
+    tree = _upper_tree(inputs)
+    # scale of each upper node's own normal increment: population s0, level-l taxa s_l
+    scale = pt.concatenate(
+        [pt.as_tensor_variable(np.array([s0]))]
+        + [pt.repeat(sds[k], len(inputs.taxa[level].labels)) for k, level in
+           enumerate(levels[:-1])]
+    )
+    n_upper = tree.ancestors.shape[0]
+    n_groups = len(tree.group_nodes)
+    w = pm.Normal(f"{term}_w", 0.0, 1.0, shape=(n_upper,))
+    if n_groups:
+        children = np.bincount(tree.group_of_inner[tree.informative],
+                               minlength=n_groups).astype(float)
+        # group means m = m0 + M eta + e, eta ~ N(0, I) (upper increments / scale),
+        # e ~ N(0, s_L²/K). Products are written as broadcast sums: the matrices are small
+        # (groups × upper nodes) and a matrix product would make pytensor look for a BLAS it
+        # does not find in a pip install.
+        M = pt.as_tensor_variable(tree.ancestors[tree.group_nodes]) * scale[None, :]
+        cov_means = (M[:, None, :] * M[None, :, :]).sum(axis=-1) + pt.diag(sds[-1] ** 2 / children)
+        if n_groups == 1:
+            means = pm.Normal(f"{term}_group_mean", m0, pt.sqrt(cov_means[0, 0]), shape=(1,))
         else:
-            z = pm.Normal(f"{term}_z__{level}", 0.0, 1.0, dims=level)
-            dev = sd * z
-        base = population if total is None else total[taxa.parent]
-        total = pm.Deterministic(f"taxon_{term}__{level}", base + dev, dims=level)
-    return total[inputs.taxa[level].index]
+            means = pm.MvNormal(f"{term}_group_mean", mu=np.full(n_groups, m0),
+                                chol=pt.linalg.cholesky(cov_means), shape=(n_groups,))
+        # eta | means: precision Q = I + Mᵀ diag(K/s_L²) M, mean Q⁻¹ Mᵀ diag(K/s_L²)(m − m0)
+        weighted = M * (children / sds[-1] ** 2)[:, None]
+        Q = pt.eye(n_upper) + (weighted[:, :, None] * M[:, None, :]).sum(axis=0)
+        chol = pt.linalg.cholesky(Q)
+        rhs = (weighted * (means - m0)[:, None]).sum(axis=0)
+        half = pt.linalg.solve_triangular(chol, rhs, lower=True)
+        eta = pt.linalg.solve_triangular(chol.T, half + w, lower=False)
+    else:  # no innermost taxon is informative: every upper value is a prior draw
+        eta = w
+    upper = m0 + (pt.as_tensor_variable(tree.ancestors) * (scale * eta)[None, :]).sum(axis=1)
+    population = pm.Deterministic(term, upper[0])
+    for k, level in enumerate(levels[:-1]):
+        lo = tree.offsets[k]
+        pm.Deterministic(f"taxon_{term}__{level}",
+                         upper[lo: lo + len(inputs.taxa[level].labels)], dims=level)
+    n_inner = len(inner_taxa.labels)
+    values = pt.zeros(n_inner)
+    informative = np.flatnonzero(tree.informative)
+    if n_groups:
+        # informative taxa: their group's mean plus zero-sum deviations (orthonormal basis)
+        values = pt.set_subtensor(values[informative],
+                                  means[tree.group_of_inner[informative]])
+    n_contrasts = tree.contrasts.shape[1]
+    if n_contrasts:
+        # partially non-centred (Papaspiliopoulos et al. 2007): dev = sd^(1−c)·u, u ~ N(0, sd^c)
+        c = float(param.get(term, 0.0))
+        if c >= 1.0:
+            dev = pm.Normal(f"{term}_dev__{inner}", 0.0, sds[-1], shape=(n_contrasts,))
+        elif c <= 0.0:
+            dev = sds[-1] * pm.Normal(f"{term}_z__{inner}", 0.0, 1.0, shape=(n_contrasts,))
+        else:
+            u = pm.Normal(f"{term}_u__{inner}", 0.0, sds[-1] ** c, shape=(n_contrasts,))
+            dev = sds[-1] ** (1.0 - c) * u
+        values = values + (pt.as_tensor_variable(tree.contrasts) * dev[None, :]).sum(axis=1)
+    weak = np.flatnonzero(~tree.informative)
+    if weak.size:
+        # taxa whose own data cannot pin their deviation (fewer than _INFORMATIVE_MIN_SPECIES
+        # species): parent value plus a non-centred deviation
+        z_weak = pm.Normal(f"{term}_z_few__{inner}", 0.0, 1.0, shape=(weak.size,))
+        values = pt.set_subtensor(values[weak],
+                                  upper[tree.parent_node_of_inner[weak]] + sds[-1] * z_weak)
+    total = pm.Deterministic(f"taxon_{term}__{inner}", values, dims=inner)
+    return population, total[inner_taxa.index]
+
+
+@dataclass
+class _Tree:
+    ancestors: np.ndarray  # (U, U): 1 where column node is the row node or one of its ancestors
+    offsets: list[int]  # start of each upper level's taxa in the upper nodes (root is node 0)
+    parent_node_of_inner: np.ndarray  # per innermost taxon, its parent's upper node
+    informative: np.ndarray  # per innermost taxon: enough species to pin its deviation
+    group_nodes: np.ndarray  # upper nodes that have informative innermost children
+    group_of_inner: np.ndarray  # per innermost taxon, its group (index into group_nodes; −1)
+    contrasts: np.ndarray  # (innermost taxa, contrasts): orthonormal zero-sum basis per group
+
+
+def _upper_tree(inputs: _Inputs) -> _Tree:
+    levels = list(inputs.taxa)
+    parent_node = [-1]  # the root (population) has no parent
+    offsets = []
+    for k, level in enumerate(levels[:-1]):
+        offsets.append(len(parent_node))
+        taxa = inputs.taxa[level]
+        if k == 0:
+            parent_node += [0] * len(taxa.labels)
+        else:
+            parent_node += [offsets[k - 1] + int(p) for p in taxa.parent]
+    n_upper = len(parent_node)
+    ancestors = np.zeros((n_upper, n_upper))
+    for node in range(n_upper):
+        at = node
+        while at >= 0:
+            ancestors[node, at] = 1.0
+            at = parent_node[at]
+    inner = inputs.taxa[levels[-1]]
+    n_inner = len(inner.labels)
+    if len(levels) == 1:
+        parent_of_inner = np.zeros(n_inner, dtype=int)
+    else:
+        parent_of_inner = offsets[-1] + np.asarray(inner.parent, dtype=int)
+    species = np.bincount(inner.index, minlength=n_inner)
+    informative = species >= _INFORMATIVE_MIN_SPECIES
+    group_nodes = np.unique(parent_of_inner[informative])
+    group_of_inner = np.full(n_inner, -1)
+    group_of_inner[informative] = np.searchsorted(group_nodes, parent_of_inner[informative])
+    blocks = [np.zeros((n_inner, 0))]
+    for group in range(len(group_nodes)):
+        members = np.flatnonzero(group_of_inner == group)
+        basis = np.zeros((n_inner, len(members) - 1))
+        basis[members, :] = _helmert(len(members))
+        blocks.append(basis)
+    return _Tree(ancestors=ancestors, offsets=offsets, parent_node_of_inner=parent_of_inner,
+                 informative=informative, group_nodes=group_nodes,
+                 group_of_inner=group_of_inner, contrasts=np.concatenate(blocks, axis=1))
+
+
+def _helmert(k: int) -> np.ndarray:
+    """(k, k − 1) orthonormal basis of the vectors of length k that sum to zero (Helmert)."""
+    basis = np.zeros((k, max(k - 1, 0)))
+    for c in range(1, k):
+        basis[:c, c - 1] = 1.0 / np.sqrt(c * (c + 1))
+        basis[c, c - 1] = -c / np.sqrt(c * (c + 1))
+    return basis
 
 
 def _hinge(spec: ModelSpec, inputs: _Inputs, x: Any, x_ref: Any, exponent: Any) -> Any:
