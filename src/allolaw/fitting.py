@@ -243,7 +243,7 @@ def fit_dataset_model(
     UserError
         If the prepared files are missing or lack a needed entry.
     """
-    from allolaw.modeling import build_model
+    from allolaw.modeling import build_model, taxon_parameterisation
     from allolaw.spec import load_spec
 
     wall_start = time.perf_counter()
@@ -263,6 +263,12 @@ def fit_dataset_model(
 
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
     model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
+    centring = taxon_parameterisation(data, spec, levels=levels,
+                                      log_reference_size=log_reference_size)
+    if centring:
+        log.info("fit %s/%s: innermost taxon deviations centred by (0 = non-centred, 1 = "
+                 "centred): %s", dataset, model_name,
+                 ", ".join(f"{k} {v:.2f}" for k, v in centring.items()))
     idata = fit_model(
         model,
         chains=int(sampler["chains"]),
@@ -285,6 +291,7 @@ def fit_dataset_model(
             "versions": json.dumps(_versions(), sort_keys=True),
             "log_reference_size": float(log_reference_size),
             "refit": json.dumps(target_accept is not None),
+            "taxon_centring": json.dumps(centring, sort_keys=True),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
     )
