@@ -66,6 +66,10 @@ def test_batch_on_slurm_matches_the_local_run(slurm_cluster: Path, tmp_path: Pat
         assert f" -A {ACCOUNT} " in call, call
     job_ids = re.findall(r"submitted with SLURM jobid (\d+)", out.stdout)
     assert len(job_ids) == N_JOBS
+    # for the CI log (.ci/run shows the output of this passed test): what was submitted
+    print(f"{len(sbatch_calls)} jobs submitted with sbatch, SLURM job ids {', '.join(job_ids)}")
+    for call in sbatch_calls:
+        print(call[:300])
     for job_id in job_ids:
         shown = subprocess.run(["scontrol", "-o", "show", "job", job_id], capture_output=True,
                                text=True, check=True, timeout=30).stdout
