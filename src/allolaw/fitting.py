@@ -262,9 +262,10 @@ def fit_dataset_model(
     seed = derive_seed(int(sampler["seed"]), dataset, model_name)
 
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
-    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
     centring = taxon_parameterisation(data, spec, levels=levels,
                                       log_reference_size=log_reference_size)
+    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
+                        centring=centring)
     if centring:
         log.info("fit %s/%s: innermost taxon deviations centred by (0 = non-centred, 1 = "
                  "centred): %s", dataset, model_name,

@@ -57,6 +57,7 @@ def build_model(
     *,
     levels: list[str],
     log_reference_size: float,
+    centring: dict[str, float] | None = None,
 ) -> pm.Model:
     """Build the PyMC model of ``spec`` for one clean table.
 
@@ -72,6 +73,9 @@ def build_model(
     log_reference_size
         Natural log of the reference size; log size is centred there, so ``intercept`` is
         the log trait of a species of reference size.
+    centring
+        The result of :func:`taxon_parameterisation` for these arguments, when the caller
+        already has it; computed here otherwise.
 
     Returns
     -------
@@ -106,8 +110,10 @@ def build_model(
        models. In Current Trends in Bayesian Methodology with Applications, CRC.
     """
     inputs = _read_inputs(data, spec, levels=levels)
-    param = taxon_parameterisation(data, spec, levels=levels,
-                                   log_reference_size=log_reference_size)
+    param = centring
+    if param is None:
+        param = taxon_parameterisation(data, spec, levels=levels,
+                                       log_reference_size=log_reference_size)
     pri = spec.priors
     coords: dict[str, Any] = {"species": inputs.species}
     for level, taxa in inputs.taxa.items():
@@ -121,9 +127,7 @@ def build_model(
         intercept_mean = pri["intercept"].get("mean", "auto")
         if intercept_mean == "auto":
             intercept_mean = float(np.median(inputs.log_trait))
-        varying = set(spec.taxa["vary"])
-        if spec.curvature == "shared_and_taxa":
-            varying.add("curvature")
+        varying = set(_varying_terms(spec))
 
         def term(name: str, prior: dict[str, Any]) -> tuple[Any, Any]:
             # (population value, per-species value) of one term of the law
@@ -288,9 +292,7 @@ def taxon_parameterisation(
        Clinical Trials 7:177–188.
     """
     used = select_levels(spec, levels)
-    terms = list(spec.taxa["vary"])
-    if spec.curvature == "shared_and_taxa":
-        terms.append("curvature")
+    terms = _varying_terms(spec)
     if not used:
         return {}
     choice = spec.taxa["parameterisation"]
@@ -306,6 +308,14 @@ def taxon_parameterisation(
         est, se = estimates[term]
         out[term] = round(_data_share(est, se, estimates["parent"]), 3)
     return out
+
+
+def _varying_terms(spec: ModelSpec) -> list[str]:
+    # the terms of the law that get taxon deviations
+    terms = list(spec.taxa["vary"])
+    if spec.curvature == "shared_and_taxa":
+        terms.append("curvature")
+    return terms
 
 
 def _per_taxon_lines(
@@ -592,7 +602,10 @@ def _taxon_terms(
       (multivariate normal with the covariance the tree implies, marginal over every upper
       value);
     - the children's deviations from their parent's mean, in an orthonormal zero-sum basis per
-      parent, ``<term>_dev__<level>`` (centred) or ``<term>_z__<level>`` (non-centred);
+      parent, ``<term>_dev__<level>`` (centred), ``<term>_z__<level>`` (non-centred) or
+      ``<term>_u__<level>`` (partially centred, see :func:`taxon_parameterisation`);
+    - innermost taxa with fewer than 3 species, as non-centred deviations from their parent,
+      ``<term>_z_few__<level>``;
     - the population and upper taxon values given the group means, as standard normals
       ``<term>_w`` mapped through the conditional mean and Cholesky factor (Gaussian
       conditioning in information form, stable as any SD goes to zero).
