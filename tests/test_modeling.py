@@ -12,6 +12,7 @@ import pytest
 from allolaw.errors import UserError
 from allolaw.modeling import (
     BOLTZMANN_EV_PER_K,
+    _softplus_np,
     build_model,
     expected_log_trait,
     select_levels,
@@ -331,15 +332,12 @@ def test_curvature_model_recovers_exponent_and_curvature_of_taxa_in_different_si
     # against a spread of 0.8 within genera, reliability 0.996), so its curvature and mean
     # genus exponent should agree with the posterior means within 2 posterior SDs
     x, y = sim.data["log_size"].to_numpy(), sim.data["log_trait"].to_numpy()
-    genus = sim.data["genus"].to_numpy()
-    labels = sorted(set(genus))
-    design = np.column_stack([(genus == g).astype(float) for g in labels]
-                             + [(genus == g) * x for g in labels] + [x**2])
-    ols = sm.OLS(y, design).fit().params
+    genus = pd.get_dummies(sim.data["genus"], dtype=float).to_numpy()
+    ols = sm.OLS(y, np.column_stack([genus, genus * x[:, None], x**2])).fit().params
     curvature = post["curvature"].values
     assert abs(curvature.mean() - ols[-1]) < 2 * curvature.std()
     genus_exponents = post["taxon_exponent__genus"].values.mean(axis=-1)
-    assert abs(genus_exponents.mean() - ols[len(labels):-1].mean()) < 2 * genus_exponents.std()
+    assert abs(genus_exponents.mean() - ols[genus.shape[1]:-1].mean()) < 2 * genus_exponents.std()
 
 
 @pytest.mark.mcmc
@@ -351,7 +349,8 @@ def test_breakpoint_model_recovers_break_location_and_both_exponents():
 
     sim = simulate_breakpoint(seed=42, break_log_size=0.5, exponent=0.9, exponent_above=0.5,
                               sigma=0.1, species_per_taxon=60)
-    model = build_model(sim.data, load_spec(MODELS, "breakpoint"), levels=sim.levels,
+    spec = load_spec(MODELS, "breakpoint")
+    model = build_model(sim.data, spec, levels=sim.levels,
                         log_reference_size=0.0)
     idata = quick_sample(model, seed=14, draws=500, tune=700, target_accept=0.95)
     post = idata.posterior
@@ -362,15 +361,12 @@ def test_breakpoint_model_recovers_break_location_and_both_exponents():
     # 61:1097-1129, for the grid-search estimate of a join point); with a flat prior on the
     # break the posterior median should sit within 0.05 log units of it
     x, y = sim.data["log_size"].to_numpy(), sim.data["log_trait"].to_numpy()
-    group = sim.data["group"].to_numpy()
-    width = load_spec(MODELS, "breakpoint").hinge_width
-
-    def hinge(d):
-        return width * np.logaddexp(0.0, d / width)
-
+    group = pd.get_dummies(sim.data["group"], dtype=float).to_numpy()
     grid = np.linspace(-1.0, 2.0, 601)
-    ssr = [sm.OLS(y, np.column_stack([(group == g).astype(float) for g in sorted(set(group))]
-                                     + [x, hinge(x - b) - hinge(-b)])).fit().ssr for b in grid]
+    # the model's own hinge (zero at the reference size 0)
+    ssr = [sm.OLS(y, np.column_stack([group, x, _softplus_np(x - b, spec.hinge_width)
+                                      - _softplus_np(-b, spec.hinge_width)])).fit().ssr
+           for b in grid]
     least_squares_break = grid[int(np.argmin(ssr))]
     assert abs(np.median(post["break_log_size"].values) - least_squares_break) < 0.05
 
