@@ -13,6 +13,7 @@ DEVELOPERS.md, so later stages read them by name.
 
 from __future__ import annotations
 
+import itertools
 import logging
 from dataclasses import dataclass, field
 from typing import Any
@@ -599,21 +600,23 @@ def _taxon_terms(
     else as an exact conditional draw (written by hand: no library offers this form):
 
     - the mean of each parent's children at the innermost level, ``<term>_group_mean``
-      (multivariate normal with the covariance the tree implies, marginal over every upper
-      value);
+      (its marginal density, every upper value integrated out);
     - the children's deviations from their parent's mean, in an orthonormal zero-sum basis per
       parent, ``<term>_dev__<level>`` (centred), ``<term>_z__<level>`` (non-centred) or
       ``<term>_u__<level>`` (partially centred, see :func:`taxon_parameterisation`);
     - innermost taxa with fewer than 3 species, as non-centred deviations from their parent,
       ``<term>_z_few__<level>``;
     - the population and upper taxon values given the group means, as standard normals
-      ``<term>_w`` mapped through the conditional mean and Cholesky factor (Gaussian
-      conditioning in information form, stable as any SD goes to zero).
+      ``<term>_w``, one per upper node, mapped through the exact conditional of each node
+      given its parent and the group means below it (:func:`_tree_values`).
 
     The joint distribution is exactly that of the nested model; what changes is the geometry:
     with few taxa at a level, the population value's posterior width scales with the taxon SD
     (a funnel that neither the centred nor the non-centred form removes), while here the
-    sampler sees only ``<term>_w`` ~ N(0, 1) independent of the data given the rest.
+    sampler sees only ``<term>_w`` ~ N(0, 1) independent of the data given the rest. Both the
+    marginal density and the conditional draws follow the taxon tree (Gaussian message passing
+    up and down the tree, e.g. Bishop 2006, ch. 8.4), so they cost element-wise operations and
+    sums by parent only: no dense matrix is formed, factorised or solved.
     """
     levels = list(inputs.taxa)
     inner = levels[-1]
@@ -621,39 +624,21 @@ def _taxon_terms(
     m0, s0 = float(prior["mean"]), float(prior["sd"])
     sds = [pm.HalfNormal(f"{term}_sd__{level}", sigma=sd_scale) for level in levels]
     tree = _upper_tree(inputs)
-    # scale of each upper node's own normal increment: population s0, level-l taxa s_l
-    scale = pt.concatenate(
-        [pt.as_tensor_variable(np.array([s0]))]
-        + [pt.repeat(sds[k], len(inputs.taxa[level].labels)) for k, level in
-           enumerate(levels[:-1])]
-    )
-    n_upper = tree.ancestors.shape[0]
     n_groups = len(tree.group_nodes)
-    w = pm.Normal(f"{term}_w", 0.0, 1.0, shape=(n_upper,))
+    w = pm.Normal(f"{term}_w", 0.0, 1.0, shape=(len(tree.parent_node),))
+    means = None
     if n_groups:
-        children = np.bincount(tree.group_of_inner[tree.informative],
-                               minlength=n_groups).astype(float)
-        # group means m = m0 + M eta + e, eta ~ N(0, I) (upper increments / scale),
-        # e ~ N(0, s_L²/K). Products are written as broadcast sums: the matrices are small
-        # (groups × upper nodes) and a matrix product would make pytensor look for a BLAS it
-        # does not find in a pip install.
-        M = pt.as_tensor_variable(tree.ancestors[tree.group_nodes]) * scale[None, :]
-        cov_means = (M[:, None, :] * M[None, :, :]).sum(axis=-1) + pt.diag(sds[-1] ** 2 / children)
-        if n_groups == 1:
-            means = pm.Normal(f"{term}_group_mean", m0, pt.sqrt(cov_means[0, 0]), shape=(1,))
-        else:
-            means = pm.MvNormal(f"{term}_group_mean", mu=np.full(n_groups, m0),
-                                chol=pt.linalg.cholesky(cov_means), shape=(n_groups,))
-        # eta | means: precision Q = I + Mᵀ diag(K/s_L²) M, mean Q⁻¹ Mᵀ diag(K/s_L²)(m − m0)
-        weighted = M * (children / sds[-1] ** 2)[:, None]
-        Q = pt.eye(n_upper) + (weighted[:, :, None] * M[:, None, :]).sum(axis=0)
-        chol = pt.linalg.cholesky(Q)
-        rhs = (weighted * (means - m0)[:, None]).sum(axis=0)
-        half = pt.linalg.solve_triangular(chol, rhs, lower=True)
-        eta = pt.linalg.solve_triangular(chol.T, half + w, lower=False)
-    else:  # no innermost taxon is informative: every upper value is a prior draw
-        eta = w
-    upper = m0 + (pt.as_tensor_variable(tree.ancestors) * (scale * eta)[None, :]).sum(axis=1)
+        # the group means' marginal density (the upward pass of _tree_messages), with a
+        # forward simulator for prior draws
+        # (the group sizes ride along as a parameter so that the signature gives the shape)
+        means = pm.CustomDist(
+            f"{term}_group_mean", pt.stack(sds), tree.group_size,
+            logp=lambda value, sd, _k: _tree_messages(tree, m0, s0, sd, value)[2],
+            random=lambda sd, _k, rng=None, size=None: _tree_draw_means(tree, m0, s0, sd, rng,
+                                                                        size),
+            signature="(l),(g)->(g)", shape=(n_groups,),
+        )
+    upper = _tree_values(tree, m0, s0, sds, means, w)
     population = pm.Deterministic(term, upper[0])
     for k, level in enumerate(levels[:-1]):
         lo = tree.offsets[k]
@@ -691,13 +676,19 @@ def _taxon_terms(
 
 @dataclass
 class _Tree:
-    ancestors: np.ndarray  # (U, U): 1 where column node is the row node or one of its ancestors
+    parent_node: np.ndarray  # per upper node (root 0, then each upper level), its parent; −1
     offsets: list[int]  # start of each upper level's taxa in the upper nodes (root is node 0)
     parent_node_of_inner: np.ndarray  # per innermost taxon, its parent's upper node
     informative: np.ndarray  # per innermost taxon: enough species to pin its deviation
     group_nodes: np.ndarray  # upper nodes that have informative innermost children
+    group_size: np.ndarray  # per group node, its number of informative innermost children
     group_of_inner: np.ndarray  # per innermost taxon, its group (index into group_nodes; −1)
     contrasts: np.ndarray  # (innermost taxa, contrasts): orthonormal zero-sum basis per group
+
+    def depths(self) -> list[np.ndarray]:
+        """Upper node indices by depth: the root, then each upper taxon level."""
+        bounds = [0, *self.offsets, len(self.parent_node)] if self.offsets else [0, 1]
+        return [np.arange(lo, hi) for lo, hi in itertools.pairwise(bounds)]
 
 
 def _upper_tree(inputs: _Inputs) -> _Tree:
@@ -711,13 +702,6 @@ def _upper_tree(inputs: _Inputs) -> _Tree:
             parent_node += [0] * len(taxa.labels)
         else:
             parent_node += [offsets[k - 1] + int(p) for p in taxa.parent]
-    n_upper = len(parent_node)
-    ancestors = np.zeros((n_upper, n_upper))
-    for node in range(n_upper):
-        at = node
-        while at >= 0:
-            ancestors[node, at] = 1.0
-            at = parent_node[at]
     inner = inputs.taxa[levels[-1]]
     n_inner = len(inner.labels)
     if len(levels) == 1:
@@ -735,9 +719,107 @@ def _upper_tree(inputs: _Inputs) -> _Tree:
         basis = np.zeros((n_inner, len(members) - 1))
         basis[members, :] = _helmert(len(members))
         blocks.append(basis)
-    return _Tree(ancestors=ancestors, offsets=offsets, parent_node_of_inner=parent_of_inner,
-                 informative=informative, group_nodes=group_nodes,
+    group_size = np.bincount(group_of_inner[informative], minlength=len(group_nodes))
+    return _Tree(parent_node=np.asarray(parent_node), offsets=offsets,
+                 parent_node_of_inner=parent_of_inner, informative=informative,
+                 group_nodes=group_nodes, group_size=group_size.astype(float),
                  group_of_inner=group_of_inner, contrasts=np.concatenate(blocks, axis=1))
+
+
+def _informative_nodes(tree: _Tree) -> list[np.ndarray]:
+    # per depth, the positions (within the depth) of the upper nodes that have informative
+    # innermost taxa below them; these are the nodes that receive a message from the data
+    depths = tree.depths()
+    has = np.zeros(len(tree.parent_node), dtype=bool)
+    has[tree.group_nodes] = True
+    for d in range(len(depths) - 1, 0, -1):
+        has[tree.parent_node[depths[d][has[depths[d]]]]] = True
+    return [np.flatnonzero(has[nodes]) for nodes in depths]
+
+
+def _tree_messages(tree: _Tree, m0: float, s0: float, sd: Any, means: Any
+                   ) -> tuple[list[Any], list[Any], Any]:
+    """Upward pass: each informative upper node's message from the group means below it.
+
+    Returns per depth the message precision ``p`` and mean ``y`` of the informative nodes
+    (their order as in :func:`_informative_nodes`), and the log density of ``means`` with every
+    upper value integrated out. A group node's message is its group mean with precision
+    ``K / s_L²``; a child's message reaches its parent through the child's own normal step
+    (variance ``1/p + s²``), and a parent combines its children's messages by precision.
+    Combining messages ``N(y_c; v, 1/q_c)`` into ``N(y; v, 1/q)`` leaves the factor
+    ``∏ N(y_c; y, 1/q_c) · (2π/q)^½`` that is free of ``v``; the log density of the means is
+    the sum of these factors over the tree plus the root's ``N(y_root; m0, 1/p + s0²)``.
+    """
+    depths = tree.depths()
+    info = _informative_nodes(tree)
+    deep = len(depths) - 1
+    log2pi = float(np.log(2.0 * np.pi))
+    p = pt.as_tensor_variable(tree.group_size) / sd[-1] ** 2
+    y = means
+    ps: list[Any] = [None] * len(depths)
+    ys: list[Any] = [None] * len(depths)
+    logp = pt.as_tensor_variable(0.0)
+    for d in range(deep, 0, -1):
+        ps[d], ys[d] = p, y
+        q = p / (1.0 + sd[d - 1] ** 2 * p)  # the message as it reaches the parent
+        parents = tree.parent_node[depths[d][info[d]]] - depths[d - 1][0]
+        at = np.searchsorted(info[d - 1], parents)  # parent position among informative nodes
+        n_par = len(info[d - 1])
+        p = pt.inc_subtensor(pt.zeros(n_par)[at], q)
+        y = pt.inc_subtensor(pt.zeros(n_par)[at], q * ys[d]) / p
+        logp = logp + (-0.5 * pt.sum(q * (ys[d] - y[at]) ** 2) + 0.5 * pt.sum(pt.log(q))
+                       - 0.5 * pt.sum(pt.log(p)) - 0.5 * (len(info[d]) - n_par) * log2pi)
+    ps[0], ys[0] = p, y
+    q = p / (1.0 + s0**2 * p)
+    logp = logp + pt.sum(0.5 * pt.log(q) - 0.5 * q * (y - m0) ** 2 - 0.5 * log2pi)
+    return ps, ys, logp
+
+
+def _tree_values(tree: _Tree, m0: float, s0: float, sds: list[Any], means: Any, w: Any) -> Any:
+    """Downward pass: every upper value given its parent and the group means below it.
+
+    A node with parent value ``v_p``, own step SD ``s`` and upward message ``(p, y)`` is
+    normal with mean ``(v_p + s² p y) / (1 + s² p)`` and SD ``s / √(1 + s² p)`` (``p = 0`` for
+    nodes with no informative taxa below: the prior step). Written with ``w ~ N(0, 1)`` per
+    node this is exact and stays finite as any SD goes to zero.
+    """
+    depths = tree.depths()
+    info = _informative_nodes(tree)
+    if means is not None:
+        ps, ys, _ = _tree_messages(tree, m0, s0, pt.stack(sds), means)
+    values: list[Any] = []
+    for d, nodes in enumerate(depths):
+        s2 = s0**2 if d == 0 else sds[d - 1] ** 2
+        if d == 0:
+            parent = pt.as_tensor_variable(np.full(1, m0))
+        else:
+            parent = values[d - 1][tree.parent_node[nodes] - depths[d - 1][0]]
+        if means is None or not len(info[d]):
+            values.append(parent + pt.sqrt(s2) * w[nodes])
+            continue
+        p, py = ps[d], ps[d] * ys[d]
+        if len(info[d]) < len(nodes):  # nodes without informative taxa below get p = 0
+            p = pt.set_subtensor(pt.zeros(len(nodes))[info[d]], p)
+            py = pt.set_subtensor(pt.zeros(len(nodes))[info[d]], py)
+        denom = 1.0 + s2 * p
+        values.append((parent + s2 * py) / denom + pt.sqrt(s2 / denom) * w[nodes])
+    return pt.concatenate(values)
+
+
+def _tree_draw_means(tree: _Tree, m0: float, s0: float, sd: np.ndarray,
+                     rng: np.random.Generator, size: Any) -> np.ndarray:
+    # forward draws of the group means (prior predictive): root, each level, group means
+    sd = np.asarray(sd, dtype=float)
+    batch = tuple(np.atleast_1d(size)) if size is not None else sd.shape[:-1]
+    sd = np.broadcast_to(sd, (*batch, sd.shape[-1]))
+    depths = tree.depths()
+    v = m0 + s0 * rng.standard_normal((*batch, 1))
+    for d in range(1, len(depths)):
+        parents = tree.parent_node[depths[d]] - depths[d - 1][0]
+        v = v[..., parents] + sd[..., d - 1: d] * rng.standard_normal((*batch, len(depths[d])))
+    at = tree.group_nodes - depths[-1][0]
+    noise = rng.standard_normal((*batch, len(at)))
+    return v[..., at] + sd[..., -1:] / np.sqrt(tree.group_size) * noise
 
 
 def _helmert(k: int) -> np.ndarray:
