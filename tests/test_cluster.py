@@ -26,9 +26,9 @@ pytestmark = [pytest.mark.cluster, pytest.mark.mcmc]
 SCRIPTS = wr.REPO / ".ci" / "slurm"
 PARTITION = "allolaw"
 ACCOUNT = "allolaw-ci"
-# Jobs of the small batch: prepare, compare and report per dataset, fit and check per
+# Jobs of the one-dataset batch (run twice: SLURM, local): prepare, compare, report, fit, check per
 # (dataset, model), and one index.
-N_JOBS = sum(3 + 2 * len(models) for models in wr.SMALL_BATCH.values()) + 1
+N_JOBS = sum(3 + 2 * len(models) for models in wr.ONE_DATASET.values()) + 1
 
 
 @pytest.fixture(scope="module")
@@ -49,7 +49,7 @@ def slurm_cluster(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 def test_batch_on_slurm_matches_the_local_run(slurm_cluster: Path, tmp_path: Path) -> None:
-    work = wr.make_workdir(tmp_path / "slurm")
+    work = wr.make_workdir(tmp_path / "slurm", wr.ONE_DATASET)
     profile = _test_profile(work / "profile-slurm-test")
     # snakemake ignores SIGTERM while it waits on jobs; SIGINT makes it cancel them and exit.
     out = wr.run_batch(
@@ -78,7 +78,7 @@ def test_batch_on_slurm_matches_the_local_run(slurm_cluster: Path, tmp_path: Pat
     threads = _node_cpus()
     assert f"{min(threads, 4)} thread(s)" in fit_log, fit_log[-2000:]
 
-    local = wr.make_workdir(tmp_path / "local")
+    local = wr.make_workdir(tmp_path / "local", wr.ONE_DATASET)
     out_local = wr.run_batch(local, "--profile", str(wr.REPO / "config/profiles/local"),
                              cores=str(threads), timeout=1260)
     assert out_local.returncode == 0, out_local.stdout[-6000:]

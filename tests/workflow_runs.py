@@ -41,10 +41,10 @@ __all__ = [
 
 REPO = Path(__file__).resolve().parents[1]
 
-# Two demo datasets x two models (the cluster test): small enough for a test, big enough to
+# Two demo datasets x two models (dry-run and kill tests): small enough for a test, big enough to
 # have one job of every rule per dataset and several jobs queued at once.
 SMALL_BATCH = {"cell_scaling": ["pooled", "taxa"], "tree_biomass": ["pooled", "taxa"]}
-# One dataset x two models (the local resume and reproducibility tests, which run it 3 times).
+# One dataset x two models (resume, reproducibility and SLURM tests, which run it 2-3 times).
 ONE_DATASET = {"cell_scaling": ["pooled", "taxa"]}
 
 # Sampler overrides merged over config.yaml with --configfile (the same path users take); tiny
