@@ -687,7 +687,7 @@ class _Tree:
 
     def depths(self) -> list[np.ndarray]:
         """Upper node indices by depth: the root, then each upper taxon level."""
-        bounds = [0, *self.offsets, len(self.parent_node)] if self.offsets else [0, 1]
+        bounds = [0, *self.offsets, len(self.parent_node)]
         return [np.arange(lo, hi) for lo, hi in itertools.pairwise(bounds)]
 
 
