@@ -2,6 +2,8 @@
 
     .venv/bin/python benchmarks/calibration.py --replicates 100 --out benchmarks/calibration.json
 
+Replicates run in worker processes of ``--per-process`` replicates each (default 10).
+
 Each replicate draws all parameters from the prior, simulates a small dataset (4 genera x 8
 species, errors in size and trait) and fits it (Talts et al. 2018, arXiv:1804.06788). The ranks
 of exponent, curvature, exponent SD and sigma should be uniform (chi-square p-values not small),
@@ -13,12 +15,15 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import subprocess
+import sys
+import tempfile
 import time
 from pathlib import Path
 
 from allolaw.spec import parse_spec
 from allolaw.testing import simulate_law
-from allolaw.testing.calibration import run_calibration
+from allolaw.testing.calibration import calibration_records, summarise_calibration
 
 # Priors fixed numbers (no data-dependent centring), narrow enough that prior datasets look
 # like scaling data; SBC is valid for any proper prior.
@@ -38,6 +43,7 @@ SBC_SPEC = {
     },
 }
 PARAMETERS = ["exponent", "curvature", "exponent_sd__genus", "sigma"]
+COVERAGE_OF = "taxon_exponent__genus"
 
 
 def template_table(seed: int = 1):
@@ -52,17 +58,43 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=20261202)
     parser.add_argument("--draws", type=int, default=500)
     parser.add_argument("--tune", type=int, default=700)
+    parser.add_argument("--per-process", type=int, default=10,
+                        help="replicates fitted by one worker process before a fresh one starts")
     parser.add_argument("--out", default="benchmarks/calibration.json")
+    parser.add_argument("--worker", nargs=2, type=int, metavar=("START", "STOP"),
+                        help=argparse.SUPPRESS)
+    parser.add_argument("--records", help=argparse.SUPPRESS)
     args = parser.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
-    sim = template_table()
+    sampler = {"draws": args.draws, "tune": args.tune, "target_accept": 0.95}
     spec = parse_spec(SBC_SPEC, name="sbc_taxa_errors_curved")
+    if args.worker:
+        sim = template_table()
+        records = calibration_records(
+            sim.data, spec, levels=sim.levels, log_reference_size=0.0, parameters=PARAMETERS,
+            coverage_of=COVERAGE_OF, replicates=args.replicates, indices=range(*args.worker),
+            seed=args.seed, sampler=sampler,
+        )
+        Path(args.records).write_text(json.dumps(records), encoding="utf-8")
+        return
+    # Each worker process fits a batch of replicates and exits: one long process compiling a
+    # JAX sampler per replicate ran out of JIT code memory after ~30 replicates ("LLVM ERROR:
+    # Unable to allocate section memory"). The prior draws are seeded, so the split does not
+    # change any replicate.
     start = time.perf_counter()
-    result = run_calibration(
-        sim.data, spec, levels=sim.levels, log_reference_size=0.0, parameters=PARAMETERS,
-        coverage_of="taxon_exponent__genus", replicates=args.replicates, seed=args.seed,
-        sampler={"draws": args.draws, "tune": args.tune, "target_accept": 0.95},
-    )
+    records: list[dict] = []
+    with tempfile.TemporaryDirectory() as tmp:
+        for lo in range(0, args.replicates, args.per_process):
+            hi = min(lo + args.per_process, args.replicates)
+            out = Path(tmp) / f"records_{lo}.json"
+            cmd = [sys.executable, __file__, "--replicates", str(args.replicates),
+                   "--seed", str(args.seed), "--draws", str(args.draws), "--tune",
+                   str(args.tune), "--worker", str(lo), str(hi), "--records", str(out)]
+            subprocess.run(cmd, check=True)
+            records += json.loads(out.read_text(encoding="utf-8"))
+            print(f"replicates {lo + 1}-{hi} of {args.replicates} done, "
+                  f"{time.perf_counter() - start:.0f} s", flush=True)
+    result = summarise_calibration(records, parameters=PARAMETERS, coverage_of=COVERAGE_OF)
     seconds = time.perf_counter() - start
     print(f"SBC: {args.replicates} replicates, {result.n_draws} thinned draws, "
           f"{result.bins} bins, {seconds:.0f} s")
@@ -77,7 +109,7 @@ def main() -> None:
     print(f"replicates with divergences: {sum(d > 0 for d in result.divergences)}; "
           f"max R-hat over replicates: {max(result.max_rhat):.3f}")
     out = result.to_dict() | {"replicates": args.replicates, "seed": args.seed,
-                              "seconds": seconds, "spec": spec.to_dict()}
+                              "seconds": seconds, "spec": spec.to_dict(), "sampler": sampler}
     Path(args.out).write_text(json.dumps(out, indent=2, sort_keys=True) + "\n", encoding="utf-8")
     print(f"wrote {args.out}")
 

@@ -447,6 +447,34 @@ def test_sbc_ranks_of_the_curved_errors_model_are_uniform_and_intervals_cover():
     assert 0.78 < result.coverage["taxon_exponent__genus"] < 1.0
 
 
+@pytest.mark.mcmc
+def test_sbc_replicates_split_over_calls_give_the_same_records():
+    # the full SBC study runs its replicates in several processes (benchmarks/calibration.py);
+    # a replicate's data and fit must not depend on which other replicates share its call
+    import sys
+
+    sys.path.insert(0, str(REPO / "benchmarks"))
+    from calibration import COVERAGE_OF, PARAMETERS, SBC_SPEC, template_table
+
+    from allolaw.testing.calibration import calibration_records, summarise_calibration
+
+    sim = template_table()
+    args = dict(levels=sim.levels, log_reference_size=0.0, parameters=PARAMETERS,
+                coverage_of=COVERAGE_OF, replicates=4, seed=3,
+                sampler={"draws": 50, "tune": 50, "chains": 2})
+    spec = parse_spec(SBC_SPEC, name="sbc")
+    together = calibration_records(sim.data, spec, indices=[1, 2], **args)
+    alone = calibration_records(sim.data, spec, indices=[2], **args)
+    assert alone == together[1:]
+    assert [rec["replicate"] for rec in together] == [1, 2]
+    assert all(rec["intervals"] == 4 for rec in together)  # four genera
+    summary = summarise_calibration(together[::-1], parameters=PARAMETERS,
+                                    coverage_of=COVERAGE_OF)
+    assert summary.ranks["exponent"] == [rec["ranks"]["exponent"] for rec in together]
+    hits = sum(rec["hits"] for rec in together)
+    assert summary.coverage[COVERAGE_OF] == pytest.approx(hits / 8)
+
+
 def test_rank_uniformity_flags_piled_up_ranks_and_passes_flat_ones():
     from allolaw.testing.calibration import rank_uniformity
 

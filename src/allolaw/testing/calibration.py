@@ -10,6 +10,7 @@ the coverage of central 90% intervals of the taxon exponents (90% in expectation
 from __future__ import annotations
 
 import logging
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -20,7 +21,13 @@ from scipy import stats
 from allolaw.modeling import SIZE_MEASUREMENT, TRAIT, build_model
 from allolaw.spec import ModelSpec
 
-__all__ = ["CalibrationResult", "rank_uniformity", "run_calibration"]
+__all__ = [
+    "CalibrationResult",
+    "calibration_records",
+    "rank_uniformity",
+    "run_calibration",
+    "summarise_calibration",
+]
 
 log = logging.getLogger(__name__)
 
@@ -90,12 +97,50 @@ def run_calibration(
     sampler
         Keyword arguments of :func:`allolaw.testing.quick_sample`.
 
+    Notes
+    -----
+    The same as :func:`calibration_records` for every replicate followed by
+    :func:`summarise_calibration`; a long study can run the records in separate processes
+    (``benchmarks/calibration.py`` does) and summarise them together.
+
     References
     ----------
     .. [1] Talts, S., Betancourt, M., Simpson, D., Vehtari, A. & Gelman, A. (2018).
        Validating Bayesian inference algorithms with simulation-based calibration.
        arXiv:1804.06788.
     """
+    records = calibration_records(
+        template, spec, levels=levels, log_reference_size=log_reference_size,
+        parameters=parameters, coverage_of=coverage_of, replicates=replicates,
+        indices=range(replicates), n_draws=n_draws, seed=seed, sampler=sampler,
+    )
+    return summarise_calibration(records, parameters=parameters, coverage_of=coverage_of,
+                                 n_draws=n_draws, bins=bins)
+
+
+def calibration_records(
+    template: pd.DataFrame,
+    spec: ModelSpec,
+    *,
+    levels: list[str],
+    log_reference_size: float,
+    parameters: list[str],
+    coverage_of: str | None = None,
+    replicates: int = 50,
+    indices: Iterable[int] | None = None,
+    n_draws: int = 99,
+    seed: int = 0,
+    sampler: dict[str, Any] | None = None,
+) -> list[dict[str, Any]]:
+    """Fit the SBC replicates ``indices`` (of ``replicates``) and return one record each.
+
+    The prior draws of all ``replicates`` come from one seeded prior predictive run, so a
+    replicate's data and fit are the same whichever subset of indices a call runs: a study
+    split over several processes gives the records of the study run in one. Each record holds
+    ``replicate``, ``ranks`` (per parameter), ``hits`` and ``intervals`` (of ``coverage_of``),
+    ``divergences`` and ``max_rhat``. Arguments as in :func:`run_calibration`.
+    """
+    import arviz as az
     import pymc as pm
 
     from allolaw.testing.data import quick_sample
@@ -105,10 +150,12 @@ def run_calibration(
     prior_model = build_model(template, spec, levels=levels, log_reference_size=log_reference_size)
     with prior_model:
         prior = pm.sample_prior_predictive(draws=replicates, random_seed=seed)
-    ranks: dict[str, list[int]] = {p: [] for p in parameters}
-    hits, total = 0, 0
-    divergences, rhats = [], []
-    for r in range(replicates):
+    records = []
+    chosen = list(range(replicates) if indices is None else indices)
+    for r in chosen:
+        if not 0 <= r < replicates:
+            msg = f"replicate index {r} outside 0..{replicates - 1}"
+            raise ValueError(msg)
         data = template.copy()
         data.attrs = dict(template.attrs)
         data["log_trait"] = prior.prior_predictive[TRAIT].values[0, r]
@@ -116,30 +163,58 @@ def run_calibration(
             data["log_size"] = prior.prior_predictive[SIZE_MEASUREMENT].values[0, r]
         model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
         idata = quick_sample(model, seed=seed + 1 + r, **(sampler or {}))
-        divergences.append(int(idata.sample_stats["diverging"].sum()))
-        import arviz as az
-
         rhat = az.rhat(idata, var_names=parameters)
-        rhats.append(float(max(float(rhat[p].max()) for p in parameters)))
+        record: dict[str, Any] = {
+            "replicate": r,
+            "divergences": int(idata.sample_stats["diverging"].sum()),
+            "max_rhat": float(max(float(rhat[p].max()) for p in parameters)),
+            "ranks": {},
+            "hits": 0,
+            "intervals": 0,
+        }
         for name in parameters:
             draws = _thin(idata.posterior[name].values.reshape(-1), n_draws)
             truth = float(prior.prior[name].values[0, r])
-            ranks[name].append(int(np.sum(draws < truth)))
+            record["ranks"][name] = int(np.sum(draws < truth))
         if coverage_of is not None:
             post = idata.posterior[coverage_of].values
             post = post.reshape(-1, post.shape[-1])
             lo, hi = np.quantile(post, [0.05, 0.95], axis=0)
             truth_vec = prior.prior[coverage_of].values[0, r]
-            hits += int(np.sum((lo < truth_vec) & (truth_vec < hi)))
-            total += truth_vec.size
-        log.info("SBC replicate %d/%d: %d divergences", r + 1, replicates, divergences[-1])
+            record["hits"] = int(np.sum((lo < truth_vec) & (truth_vec < hi)))
+            record["intervals"] = int(truth_vec.size)
+        records.append(record)
+        log.info("SBC replicate %d (%d of %d here): %d divergences", r + 1, len(records),
+                 len(chosen), record["divergences"])
+    return records
+
+
+def summarise_calibration(
+    records: list[dict[str, Any]],
+    *,
+    parameters: list[str],
+    coverage_of: str | None = None,
+    n_draws: int = 99,
+    bins: int = 10,
+) -> CalibrationResult:
+    """Rank uniformity and interval coverage over the records of :func:`calibration_records`.
+
+    Records are taken in replicate order, whatever order they come in.
+    """
+    records = sorted(records, key=lambda rec: int(rec["replicate"]))
+    ranks = {name: [int(rec["ranks"][name]) for rec in records] for name in parameters}
     uniformity = {name: rank_uniformity(rk, n_draws=n_draws, bins=bins)
                   for name, rk in ranks.items()}
+    total = sum(int(rec["intervals"]) for rec in records)
     coverage = {}
     if coverage_of is not None and total:
+        hits = sum(int(rec["hits"]) for rec in records)
         coverage = {coverage_of: hits / total, "intervals": float(total)}
-    return CalibrationResult(ranks=ranks, n_draws=n_draws, bins=bins, uniformity=uniformity,
-                             coverage=coverage, divergences=divergences, max_rhat=rhats)
+    return CalibrationResult(
+        ranks=ranks, n_draws=n_draws, bins=bins, uniformity=uniformity, coverage=coverage,
+        divergences=[int(rec["divergences"]) for rec in records],
+        max_rhat=[float(rec["max_rhat"]) for rec in records],
+    )
 
 
 def rank_uniformity(ranks: list[int] | np.ndarray, *, n_draws: int, bins: int = 10

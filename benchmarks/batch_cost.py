@@ -1,0 +1,77 @@
+"""Where a finished demo batch spent its time: fits, refits, and everything else, per dataset.
+
+Reads the Snakemake benchmark files of a batch (``logs/benchmarks/<dataset>/<job>.tsv``, one
+per job, written by the ``benchmark:`` directive of each rule) and the refit wall times the
+check stage keeps in each ``posterior.nc`` (attribute ``refit``). Prints, per dataset, the
+seconds of the fits, of the refits (which run inside check jobs), of the rest (prepare, checks
+without their refits, hypotheses and report), and the share of the rest in the fit time (the
+speed target: hypotheses + checks + report ≤ 10% of fit time).
+
+    .venv/bin/python benchmarks/batch_cost.py            # the batch in this checkout
+    .venv/bin/python benchmarks/batch_cost.py /tmp/run   # the batch run in another folder
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("workdir", nargs="?", default=str(REPO),
+                        help="folder the batch ran in (holds logs/ and results/)")
+    parser.add_argument("--results", default="results", help="results folder, below workdir")
+    parser.add_argument("--json", help="also write the table here")
+    args = parser.parse_args()
+    work = Path(args.workdir)
+
+    import pandas as pd
+
+    from allolaw.diagnostics import read_posterior
+    from allolaw.report import read_benchmarks
+
+    jobs = read_benchmarks(work / "logs")
+    if jobs.empty:
+        sys.exit(f"{work / 'logs' / 'benchmarks'}: no benchmark files; run the batch first")
+    jobs["stage"] = jobs["job"].str.split("/").str[-1].str.split("_").str[0]
+    rows = []
+    for dataset, part in jobs[jobs["dataset"] != ""].groupby("dataset"):
+        refit_s, n_refits = 0.0, 0
+        for post in sorted((work / args.results / dataset).glob("*/posterior.nc")):
+            attr = read_posterior(post).attrs.get("refit")
+            if attr:
+                refit_s += float(json.loads(attr).get("seconds", 0.0))
+                n_refits += 1
+        by_stage = part.groupby("stage")["s"].sum()
+        fit_s = float(by_stage.get("fit", 0.0))
+        rest_s = float(by_stage.sum()) - fit_s - refit_s
+        rows.append({
+            "dataset": dataset,
+            "fits": int((part["stage"] == "fit").sum()),
+            "fit_s": round(fit_s, 1),
+            "refits": n_refits,
+            "refit_s": round(refit_s, 1),
+            "prepare_s": round(float(by_stage.get("prepare", 0.0)), 1),
+            "check_s_without_refits": round(float(by_stage.get("check", 0.0)) - refit_s, 1),
+            "compare_s": round(float(by_stage.get("compare", 0.0)), 1),
+            "report_s": round(float(by_stage.get("report", 0.0)), 1),
+            "rest_share_of_fits": round(rest_s / (fit_s + refit_s), 3) if fit_s else None,
+        })
+    table = pd.DataFrame(rows)
+    index_s = float(jobs.loc[jobs["dataset"] == "", "s"].sum())
+    print(table.to_string(index=False))
+    print(f"batch-wide jobs (index page): {index_s:.1f} s; sum of all job seconds "
+          f"{jobs['s'].sum():.1f} s (jobs run side by side, so wall time is less)")
+    print("rest = prepare + checks without refits + compare (hypotheses) + report; "
+          "target: rest <= 10% of fits + refits")
+    if args.json:
+        Path(args.json).write_text(table.to_json(orient="records", indent=1))
+
+
+if __name__ == "__main__":
+    main()
