@@ -43,9 +43,11 @@ def main() -> None:
     for dataset, part in jobs[jobs["dataset"] != ""].groupby("dataset"):
         refit_s, n_refits = 0.0, 0
         for post in sorted((work / args.results / dataset).glob("*/posterior.nc")):
-            attr = read_posterior(post).attrs.get("refit")
-            if attr:
-                refit_s += float(json.loads(attr).get("seconds", 0.0))
+            # the fit stage writes true/false; the check stage replaces it with a record of
+            # its refit, which holds the refit's wall time
+            refit = json.loads(read_posterior(post).attrs.get("refit", "false"))
+            if isinstance(refit, dict):
+                refit_s += float(refit.get("seconds", 0.0))
                 n_refits += 1
         by_stage = part.groupby("stage")["s"].sum()
         fit_s = float(by_stage.get("fit", 0.0))
