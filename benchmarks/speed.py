@@ -203,9 +203,11 @@ def _work(job: dict[str, Any]) -> dict[str, Any]:
 
         spec = parse_spec(spec_raw, name=f"bench_{job['problem']}")
         model = build_model(data, spec, levels=levels, log_reference_size=log_ref)
+        prior_model = build_model(data, spec, levels=levels, log_reference_size=log_ref,
+                                  prior_only=True)
         idata = fit_model(model, chains=4, draws=draws, tune=draws, target_accept=0.9,
                           seed=SEED, backend=job["backend"], threads=job["threads"],
-                          prior_draws=100)
+                          prior_draws=100, prior_model=prior_model)
         wall = time.perf_counter() - start
         sampling = float(idata.attrs["sampling_seconds"])
         compile_s = float(idata.attrs["compile_seconds"])

@@ -269,7 +269,7 @@ def test_fit_dataset_model_writes_posterior_with_every_attribute(tmp_path: Path)
     back = az.from_netcdf(path)
     for key in ("allolaw_version", "dataset", "model", "spec", "sampler", "backend", "seed",
                 "data_sha256", "versions", "log_reference_size", "compile_seconds",
-                "sampling_seconds", "wall_seconds", "taxon_centring"):
+                "sampling_seconds", "wall_seconds"):
         assert key in back.attrs, key
     assert back.attrs["dataset"] == "toy"
     assert back.attrs["model"] == "pooled"
@@ -279,7 +279,6 @@ def test_fit_dataset_model_writes_posterior_with_every_attribute(tmp_path: Path)
     assert back.attrs["data_sha256"] == digest
     assert json.loads(back.attrs["sampler"])["draws"] == 100
     assert "pymc" in json.loads(back.attrs["versions"])
-    assert json.loads(back.attrs["taxon_centring"]) == {}  # pooled: no taxon terms
     assert float(back.attrs["log_reference_size"]) == pytest.approx(np.log(50.0))
     assert set(idata.groups()) <= set(back.groups())
     np.testing.assert_array_equal(back.posterior["exponent"].values,

@@ -16,7 +16,6 @@ from allolaw.modeling import (
     build_model,
     expected_log_trait,
     select_levels,
-    taxon_parameterisation,
 )
 from allolaw.spec import load_spec, parse_spec
 from allolaw.testing import (
@@ -81,10 +80,10 @@ def test_every_demo_model_builds_with_the_contract_names_and_dims(name):
         assert f"coef__{cov['column']}" in names
 
 
-@pytest.mark.parametrize("form", ["centred", "non-centred", "auto"])
-def test_taxon_values_follow_the_nested_normal_model_exactly(form):
-    # The sampler sees group means, zero-sum contrasts and conditional normals
-    # (modeling._taxon_terms); the joint must still be the textbook nested model: population
+@pytest.mark.parametrize("form", ["non-centred", "auto"])
+def test_prior_draws_follow_the_nested_normal_model_exactly(form):
+    # Prior draws come from build_model(..., prior_only=True) (the sampled form of the
+    # whitened model depends on the data); they must follow the textbook nested model: population
     # ~ N(m0, s0), each order ~ N(population, s_order), each family ~ N(its order, s_family)
     # (e.g. Gelman et al. 2013, Bayesian Data Analysis 3rd ed., ch. 5). Standardised
     # increments drawn from the prior must be independent N(0, 1): checked with
@@ -98,7 +97,9 @@ def test_taxon_values_follow_the_nested_normal_model_exactly(form):
     sim.data = sim.data.drop(index=drop).reset_index(drop=True)
     spec = parse_spec({"taxa": {"levels": "all", "parameterisation": form},
                        "priors": {"exponent": {"mean": 0.7, "sd": 0.4}}}, name="n")
-    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0,
+                        prior_only=True)
+    assert not model.potentials
     with model:
         prior = pm.sample_prior_predictive(draws=2000, random_seed=1).prior
     parent = sim.data.groupby("family")["order"].first()
@@ -171,33 +172,6 @@ def test_expected_log_trait_adds_curvature_per_taxon():
     np.testing.assert_allclose(expected_log_trait(idata, grid)[0], grid - 0.1 * grid**2)
     np.testing.assert_allclose(expected_log_trait(idata, grid, level="genus", taxon="g1")[0],
                                grid - 0.15 * grid**2)
-
-
-def test_auto_parameterisation_centres_terms_by_how_much_the_data_pin_them():
-    spec = parse_spec({"taxa": {"levels": "all"}}, name="a")
-    # many species per family over a wide size range, real spread between families: each
-    # family's intercept and exponent are pinned by its own data → mostly centred
-    informed = simulate_law(seed=1, taxa=(3, 6), species_per_taxon=30, intercept_sd=0.5,
-                            exponent_sd=0.2, sigma=0.05)
-    share = taxon_parameterisation(informed.data, spec, levels=informed.levels)
-    assert set(share) == {"intercept", "exponent"}
-    assert share["intercept"] > 0.9
-    assert share["exponent"] > 0.9
-    # no spread of exponents between families: the prior dominates → non-centred
-    # (DerSimonian–Laird's τ² is noisy with 18 taxa: judged on the mean over four tables)
-    shares = []
-    for seed in range(4):
-        equal = simulate_law(seed=seed, taxa=(3, 6), species_per_taxon=5, intercept_sd=0.3,
-                             exponent_sd=0.0, sigma=0.3)
-        shares.append(taxon_parameterisation(equal.data, spec, levels=equal.levels)["exponent"])
-    assert np.mean(shares) < 0.3, shares
-    fixed = parse_spec({"taxa": {"levels": "innermost", "parameterisation": "centred"}}, name="f")
-    assert taxon_parameterisation(equal.data, fixed, levels=equal.levels) == {
-        "intercept": 1.0, "exponent": 1.0}
-    curved = parse_spec({"taxa": {"levels": "all", "parameterisation": "non-centred"},
-                         "curvature": "shared_and_taxa"}, name="c")
-    assert taxon_parameterisation(equal.data, curved, levels=equal.levels) == {
-        "intercept": 0.0, "exponent": 0.0, "curvature": 0.0}
 
 
 def test_level_choice_follows_the_spec_and_rejects_unknown_levels():
@@ -274,10 +248,14 @@ def test_a_fit_through_the_fit_stage_recovers_the_exponent_without_divergences()
     from allolaw.fitting import fit_model
 
     sim = _smoke_data("taxa_errors")
-    model = build_model(sim.data, load_spec(MODELS, "taxa_errors"), levels=sim.levels,
-                        log_reference_size=0.0)
+    spec = load_spec(MODELS, "taxa_errors")
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+    with pytest.raises(ValueError, match="prior_only"):  # prior draws need the prior form
+        fit_model(model, seed=11)
+    prior_model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0,
+                              prior_only=True)
     idata = fit_model(model, chains=2, draws=300, tune=400, target_accept=0.95, seed=11,
-                      prior_draws=20)
+                      prior_draws=20, prior_model=prior_model)
     assert int(idata.sample_stats["diverging"].sum()) == 0
     assert list(idata.log_likelihood.data_vars) == ["trait"]
     assert {"log_size_obs", "log_size_ref"} <= set(idata.constant_data.data_vars)
@@ -493,82 +471,162 @@ def test_only_the_terms_named_in_vary_get_taxon_deviations():
     assert "taxon_exponent__order" not in names
 
 
-def _tree_inputs(upper_parents, inner_parent, inner_species):
-    # a taxon tree for modeling's internal helpers: upper levels given by their parents'
-    # positions, innermost taxa with their parent and species count
-    from allolaw.modeling import _Inputs, _Taxa
-
-    taxa = {}
-    for k, parents in enumerate(upper_parents):
-        taxa[f"level{k}"] = _Taxa(labels=[f"l{k}t{i}" for i in range(len(parents))],
-                                  index=np.zeros(1, dtype=int),
-                                  parent=None if k == 0 else np.asarray(parents))
-    index = np.repeat(np.arange(len(inner_parent)), inner_species)
-    taxa["inner"] = _Taxa(labels=[f"t{i}" for i in range(len(inner_parent))], index=index,
-                          parent=np.asarray(inner_parent) if upper_parents else None)
-    zeros = np.zeros(len(index))
-    return _Inputs(species=[str(i) for i in range(len(index))], log_size=zeros,
-                   log_trait=zeros, taxa=taxa)
-
-
-@pytest.mark.parametrize("tree_shape", [
-    ([], [0] * 6, [5, 5, 1, 4, 3, 2]),  # one level; one taxon too small to pin itself
-    ([[0, 0, 0]], [0, 0, 1, 1, 1, 2, 2], [5, 1, 4, 4, 2, 3, 3]),  # two levels
-    ([[0, 0], [0, 0, 1, 1, 1]], [0, 0, 1, 2, 2, 3, 4, 4], [4, 4, 4, 3, 3, 1, 5, 6]),  # three;
-    # order 3 has no informative family
-])
-def test_tree_message_passing_equals_dense_gaussian_algebra(tree_shape):
-    # The group means' density and the upper values' conditional are computed by passing
-    # messages along the taxon tree (modeling._tree_messages / _tree_values). Outside check:
-    # the same quantities from the dense covariance of the nested normal model, with
-    # scipy.stats.multivariate_normal for the density and the Gaussian conditioning formulas
-    # (Bishop 2006, Pattern Recognition and Machine Learning, eqs. 2.81-2.82) for the rest.
-    import pytensor
-    import pytensor.tensor as pt
+@pytest.mark.parametrize("case", ["two levels, three terms", "one level, intercept only"])
+def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
+    # The sampler sees each taxon value through its exact conditional given its parent and
+    # the data below it (modeling._taxon_terms), plus a potential (prior density and
+    # log-Jacobian). For a law linear in the taxon values with normal noise, the trait's
+    # density plus that potential must equal the marginal density of the data with every
+    # taxon value integrated out, for ANY value of the standard normals w. Outside check:
+    # the marginal from the dense covariance of the nested normal model, y ~ N(F m, F C Fᵀ +
+    # σ² I) (e.g. Gelman et al. 2013, Bayesian Data Analysis 3rd ed., ch. 15), evaluated with
+    # scipy.stats.multivariate_normal.
     from scipy import stats
 
-    from allolaw.modeling import _tree_draw_means, _tree_messages, _tree_values, _upper_tree
+    sim = _nested_data()
+    first = sim.data["family"].iloc[0]  # a family with a single species
+    drop = sim.data.index[sim.data["family"] == first][1:]
+    data = sim.data.drop(index=drop).reset_index(drop=True)
+    sigma, ref = 0.3, 0.2
+    if case == "two levels, three terms":
+        levels = sim.levels
+        spec = {"taxa": {"levels": "all", "vary": ["intercept", "exponent"]},
+                "curvature": "shared_and_taxa"}
+        terms = ["intercept", "exponent", "curvature"]
+    else:
+        levels = sim.levels
+        spec = {"taxa": {"levels": "innermost", "vary": ["intercept"]}}
+        terms = ["intercept"]
+    spec["priors"] = {"sigma": {"fixed": sigma}, "intercept": {"mean": 0.4, "sd": 2.0}}
+    spec = parse_spec(spec, name="w")
+    model = build_model(data, spec, levels=levels, log_reference_size=ref)
+    used = levels if len(terms) == 3 else levels[-1:]
+    logp = model.compile_logp(vars=[model["trait"], *model.potentials], sum=True)
 
-    tree = _upper_tree(_tree_inputs(*tree_shape))
-    rng = np.random.default_rng(3)
-    n_levels = len(tree_shape[0]) + 1
-    m0, s0, sd = 0.3, 0.7, rng.uniform(0.2, 1.0, n_levels)
-    n_upper = len(tree.parent_node)
-    # dense covariance of the upper values: each node is the sum of its ancestors' steps
-    step = np.empty(n_upper)
-    for depth, nodes in enumerate(tree.depths()):
-        step[nodes] = s0 if depth == 0 else sd[depth - 1]
-    paths = np.zeros((n_upper, n_upper))
-    for node in range(n_upper):
-        at = node
-        while at >= 0:
-            paths[node, at] = step[at]
-            at = tree.parent_node[at]
-    cov_upper = paths @ paths.T
-    groups = tree.group_nodes
-    cov_means = cov_upper[np.ix_(groups, groups)] + np.diag(sd[-1] ** 2 / tree.group_size)
-    means = rng.normal(0.0, 1.0, len(groups))
+    rng = np.random.default_rng(7)
+    x = data["log_size"].to_numpy() - ref
+    y = data["log_trait"].to_numpy()
+    feature = {"intercept": np.ones_like(x), "exponent": x, "curvature": x**2}
+    prior = {"intercept": (0.4, 2.0), "exponent": (1.0, 1.0), "curvature": (0.0, 0.25)}
+    for trial in range(3):
+        point = model.initial_point()
+        sds = {}
+        for term in terms:
+            for level in used:
+                sds[term, level] = rng.uniform(0.05, 1.5) if trial else 1e-3  # near zero too
+                point[f"{term}_sd__{level}_log__"] = np.log(sds[term, level])
+        for name in point:
+            if name.endswith("_w"):
+                point[name] = rng.normal(0.0, 3.0, point[name].shape)
+        shared_exponent = None
+        if "exponent" not in terms:
+            shared_exponent = 0.7
+            point["exponent"] = np.array(shared_exponent)
+        # dense nested model: each species' term value is the sum of the steps on its path
+        mean = np.zeros(len(y))
+        cov = sigma**2 * np.eye(len(y))
+        for term in terms:
+            m0, s0 = prior[term]
+            paths = [np.ones((len(y), 1)) * s0]
+            for level in used:
+                onehot = pd.get_dummies(data[level]).to_numpy(dtype=float)
+                paths.append(onehot * sds[term, level])
+            loading = np.concatenate(paths, axis=1) * feature[term][:, None]
+            mean += m0 * feature[term]
+            cov += loading @ loading.T
+        if shared_exponent is not None:
+            mean += shared_exponent * x
+        expected = stats.multivariate_normal(mean, cov).logpdf(y)
+        assert float(logp(point)) == pytest.approx(expected, abs=1e-7), trial
 
-    sd_in, means_in, w_in = pt.dvector(), pt.dvector(), pt.dvector()
-    logp = pytensor.function([sd_in, means_in], _tree_messages(tree, m0, s0, sd_in, means_in)[2])
-    expected = stats.multivariate_normal(np.full(len(groups), m0), cov_means).logpdf(means)
-    assert float(logp(sd, means)) == pytest.approx(expected, abs=1e-9)
 
-    values = pytensor.function(
-        [sd_in, means_in, w_in],
-        _tree_values(tree, m0, s0, [sd_in[i] for i in range(n_levels)], means_in, w_in),
-    )
-    centre = np.asarray(values(sd, means, np.zeros(n_upper)))
-    # values are linear in w: their conditional covariance is B Bᵀ with B's columns the
-    # response to each unit w
-    basis = np.array([np.asarray(values(sd, means, e)) - centre for e in np.eye(n_upper)]).T
-    cross = cov_upper[:, groups]
-    cond_mean = m0 + cross @ np.linalg.solve(cov_means, means - m0)
-    cond_cov = cov_upper - cross @ np.linalg.solve(cov_means, cross.T)
-    np.testing.assert_allclose(centre, cond_mean, atol=1e-9)
-    np.testing.assert_allclose(basis @ basis.T, cond_cov, atol=1e-9)
+def test_whitened_map_is_an_exact_change_of_variables_for_robust_models_too():
+    # With Student-t residuals the data messages are only an approximation, but the model
+    # must stay exact: the potential plus the N(0, 1) density of w must equal the nested
+    # normal prior density of the taxon values θ(w) plus log |det ∂θ/∂w| (change of
+    # variables). Outside check: the prior density from the dense covariance with
+    # scipy.stats.multivariate_normal, the determinant with numpy (θ is linear in w given
+    # the rest, so ∂θ/∂w is read off unit vectors).
+    from scipy import stats
 
-    # the forward simulator used for prior draws has the same mean and covariance
-    draws = _tree_draw_means(tree, m0, s0, sd, np.random.default_rng(1), (40000,))
-    np.testing.assert_allclose(draws.mean(axis=0), m0, atol=0.03)  # MC SE <= 0.01
-    np.testing.assert_allclose(np.cov(draws.T), np.atleast_2d(cov_means), atol=0.06)
+    sim = _nested_data()
+    spec = parse_spec({"taxa": {"levels": "all"}, "residuals": "student_t",
+                       "priors": {"intercept": {"mean": 0.4, "sd": 2.0}}}, name="t")
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.1)
+    assert len(model.potentials) == 1
+    names = ["intercept", "exponent"]
+    nodes = [[t, *(f"taxon_{t}__{lv}" for lv in sim.levels)] for t in names]
+    outs = model.replace_rvs_by_values([model[n] for group in nodes for n in group]
+                                       + list(model.potentials))
+    fn = model.compile_fn(outs, inputs=model.value_vars, point_fn=True,
+                          on_unused_input="ignore")
+    rng = np.random.default_rng(5)
+    point = model.initial_point()
+    sds = {(t, lv): rng.uniform(0.1, 1.0) for t in names for lv in sim.levels}
+    for (t, lv), v in sds.items():
+        point[f"{t}_sd__{lv}_log__"] = np.log(v)
+    point["nu_log__"] = np.log(4.0)
+    sizes = [point[f"{t}_w"].size for t in names]
+
+    def theta(w):
+        for t, part in zip(names, np.split(w, np.cumsum(sizes)[:-1]), strict=True):
+            point[f"{t}_w"] = part
+        out = fn(point)
+        return np.concatenate([np.atleast_1d(v) for v in out[:-1]]), float(out[-1])
+
+    w = rng.normal(size=sum(sizes))
+    value, potential = theta(w)
+    base, _ = theta(np.zeros_like(w))
+    jac = np.array([theta(e)[0] - base for e in np.eye(len(w))]).T
+    # dense nested prior of (population, orders, families) per term
+    parent = sim.data.groupby("family", sort=False)["order"].first()
+    orders = list(dict.fromkeys(sim.data["order"]))
+    mean, blocks = [], []
+    for t, (m0, s0) in zip(names, [(0.4, 2.0), (1.0, 1.0)], strict=True):
+        n_o, n_f = len(orders), len(parent)
+        load = np.zeros((1 + n_o + n_f, 1 + n_o + n_f))
+        load[:, 0] = s0
+        for i in range(n_o):
+            load[1 + i, 1 + i] = sds[t, "order"]
+        for j, fam in enumerate(parent.index):
+            o = orders.index(parent[fam])
+            load[1 + n_o + j, 1 + o] = sds[t, "order"]
+            load[1 + n_o + j, 1 + n_o + j] = sds[t, "family"]
+        mean += [m0] * (1 + n_o + n_f)
+        blocks.append(load @ load.T)
+    cov = np.zeros((len(mean), len(mean)))
+    at = 0
+    for block in blocks:
+        cov[at:at + len(block), at:at + len(block)] = block
+        at += len(block)
+    expected = (stats.multivariate_normal(mean, cov).logpdf(value)
+                + np.linalg.slogdet(jac)[1])
+    got = potential + stats.norm.logpdf(w).sum()
+    assert got == pytest.approx(expected, abs=1e-7)
+
+
+def test_taxon_values_are_drawn_down_the_tree_from_their_conditional():
+    # The same map with no data messages is the plain non-centred form: value = parent +
+    # SD × w, level by level (what prior draws and `parameterisation: non-centred` use).
+    sim = _nested_data()
+    spec = parse_spec({"taxa": {"levels": "all", "parameterisation": "non-centred"}}, name="n")
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+    assert not model.potentials
+    outs = model.replace_rvs_by_values([model["taxon_intercept__family"],
+                                        model["taxon_intercept__order"], model["intercept"]])
+    fn = model.compile_fn(outs, inputs=model.value_vars, point_fn=True,
+                          on_unused_input="ignore")
+    point = model.initial_point()
+    rng = np.random.default_rng(2)
+    point["intercept_w"] = rng.normal(size=point["intercept_w"].shape)
+    point["intercept_sd__order_log__"] = np.log(0.5)
+    point["intercept_sd__family_log__"] = np.log(0.2)
+    family, order, population = fn(point)
+    w = point["intercept_w"]
+    prior_mean = float(np.median(sim.data["log_trait"]))
+    assert population == pytest.approx(prior_mean + 5.0 * w[0])
+    parent = sim.data.groupby("family", sort=False)["order"].first()
+    orders = list(dict.fromkeys(sim.data["order"]))
+    np.testing.assert_allclose(order, population + 0.5 * w[1:1 + len(orders)])
+    expected = [order[orders.index(parent[f])] for f in parent.index]
+    np.testing.assert_allclose(family, np.array(expected) + 0.2 * w[1 + len(orders):])

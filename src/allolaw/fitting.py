@@ -22,6 +22,7 @@ import logging
 import os
 import sys
 import time
+import warnings
 from importlib import metadata
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -91,6 +92,7 @@ def fit_model(
     backend: str = "auto",
     threads: int = 1,
     prior_draws: int = 500,
+    prior_model: pm.Model | None = None,
 ) -> az.InferenceData:
     """Sample a model's posterior with NUTS and add every group the later stages read.
 
@@ -113,6 +115,10 @@ def fit_model(
         :func:`allolaw.runtime.configure_job`), else one after another.
     prior_draws
         Draws from the prior and prior predictive distribution.
+    prior_model
+        The model to draw those from: ``build_model(..., prior_only=True)`` for models with
+        taxon terms, whose sampled form depends on the data (see
+        :func:`allolaw.modeling.build_model`); ``model`` itself when not given.
 
     Returns
     -------
@@ -132,6 +138,11 @@ def fit_model(
 
     if OBSERVED not in model.named_vars or model[OBSERVED] not in model.observed_RVs:
         msg = f"the model has no observed variable named {OBSERVED!r}"
+        raise ValueError(msg)
+    if prior_model is None and model.potentials:
+        # prior sampling ignores potentials: the prior draws would be wrong, not just noisy
+        msg = ("the model has potentials (taxon terms whitened by the data); pass "
+               "prior_model=build_model(..., prior_only=True) for its prior draws")
         raise ValueError(msg)
     wall_start = time.perf_counter()
     chosen = resolve_backend(backend)
@@ -170,17 +181,25 @@ def fit_model(
         )
         log.info("fit: log-likelihood of %r in %.1f s", OBSERVED, time.perf_counter() - start)
         phase = time.perf_counter()
-        pm.sample_posterior_predictive(
-            idata,
-            var_names=[OBSERVED],
-            random_seed=int(seeds[1]),
-            progressbar=False,
-            extend_inferencedata=True,
-            compile_kwargs=dict(_PREDICTIVE_COMPILE),
-        )
+        with warnings.catch_warnings():
+            # The taxon-tree potential (modeling._taxon_terms) is part of the posterior the
+            # draws come from; the predictive draws only recompute the taxon values from the
+            # sampled standard normals and draw the trait, so PyMC's generic warning that
+            # potentials are ignored does not apply.
+            warnings.filterwarnings("ignore", message="The effect of Potentials",
+                                    category=UserWarning)
+            pm.sample_posterior_predictive(
+                idata,
+                var_names=[OBSERVED],
+                random_seed=int(seeds[1]),
+                progressbar=False,
+                extend_inferencedata=True,
+                compile_kwargs=dict(_PREDICTIVE_COMPILE),
+            )
         log.info("fit: posterior predictive in %.1f s", time.perf_counter() - phase)
         phase = time.perf_counter()
         prior = pm.sample_prior_predictive(draws=prior_draws, random_seed=int(seeds[2]),
+                                           model=prior_model or model,
                                            compile_kwargs=dict(_PREDICTIVE_COMPILE))
         log.info("fit: %d prior draws in %.1f s", prior_draws, time.perf_counter() - phase)
     for group in ("warmup_posterior", "warmup_sample_stats"):  # nutpie keeps the warm-up
@@ -252,7 +271,7 @@ def fit_dataset_model(
     UserError
         If the prepared files are missing or lack a needed entry.
     """
-    from allolaw.modeling import build_model, taxon_parameterisation
+    from allolaw.modeling import build_model
     from allolaw.spec import load_spec
 
     wall_start = time.perf_counter()
@@ -271,14 +290,9 @@ def fit_dataset_model(
     seed = derive_seed(int(sampler["seed"]), dataset, model_name)
 
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
-    centring = taxon_parameterisation(data, spec, levels=levels,
-                                      log_reference_size=log_reference_size)
-    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
-                        centring=centring)
-    if centring:
-        log.info("fit %s/%s: innermost taxon deviations centred by (0 = non-centred, 1 = "
-                 "centred): %s", dataset, model_name,
-                 ", ".join(f"{k} {v:.2f}" for k, v in centring.items()))
+    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
+    prior_model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
+                              prior_only=True)
     idata = fit_model(
         model,
         chains=int(sampler["chains"]),
@@ -289,6 +303,7 @@ def fit_dataset_model(
         backend=str(sampler.get("backend", "auto")),
         threads=threads,
         prior_draws=int(sampler.get("prior_draws", 500)),
+        prior_model=prior_model,
     )
     idata.attrs.update(
         {
@@ -301,7 +316,6 @@ def fit_dataset_model(
             "versions": json.dumps(_versions(), sort_keys=True),
             "log_reference_size": float(log_reference_size),
             "refit": json.dumps(target_accept is not None),
-            "taxon_centring": json.dumps(centring, sort_keys=True),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
     )

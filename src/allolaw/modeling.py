@@ -13,7 +13,6 @@ DEVELOPERS.md, so later stages read them by name.
 
 from __future__ import annotations
 
-import itertools
 import logging
 from dataclasses import dataclass, field
 from typing import Any
@@ -33,7 +32,6 @@ __all__ = [
     "build_model",
     "expected_log_trait",
     "select_levels",
-    "taxon_parameterisation",
 ]
 
 log = logging.getLogger(__name__)
@@ -46,11 +44,6 @@ TRAIT = "trait"
 #: term for model comparison: ``log_likelihood`` holds ``trait`` only).
 SIZE_MEASUREMENT = "measured_log_size"
 
-# auto parameterisation thresholds (see taxon_parameterisation)
-# an innermost taxon with fewer species cannot pin its own intercept and exponent: its
-# deviation is written non-centred from its parent (common practice, no source)
-_INFORMATIVE_MIN_SPECIES = 3
-
 
 def build_model(
     data: pd.DataFrame,
@@ -58,7 +51,7 @@ def build_model(
     *,
     levels: list[str],
     log_reference_size: float,
-    centring: dict[str, float] | None = None,
+    prior_only: bool = False,
 ) -> pm.Model:
     """Build the PyMC model of ``spec`` for one clean table.
 
@@ -74,9 +67,10 @@ def build_model(
     log_reference_size
         Natural log of the reference size; log size is centred there, so ``intercept`` is
         the log trait of a species of reference size.
-    centring
-        The result of :func:`taxon_parameterisation` for these arguments, when the caller
-        already has it; computed here otherwise.
+    prior_only
+        Build the model for prior draws: the taxon values are written in the plain
+        non-centred form, without the data-whitened map (whose potential prior sampling
+        would ignore). Same variables, same joint prior.
 
     Returns
     -------
@@ -96,7 +90,9 @@ def build_model(
     around it with the known SD (Carroll et al. 2006, ch. 9; Richardson & Gilks 1993). With
     ``ratio`` errors this is the Bayesian form of Deming regression (Deming 1943).
     Taxon deviations are independent normal terms per level (no correlation between the
-    intercept and exponent deviations of a taxon).
+    intercept and exponent deviations of a taxon). The sampler sees them whitened by the data
+    (:func:`_taxon_terms`), which removes the funnels of hierarchical models (Betancourt &
+    Girolami 2015) without choosing between centred and non-centred forms.
 
     References
     ----------
@@ -111,63 +107,71 @@ def build_model(
        models. In Current Trends in Bayesian Methodology with Applications, CRC.
     """
     inputs = _read_inputs(data, spec, levels=levels)
-    param = centring
-    if param is None:
-        param = taxon_parameterisation(data, spec, levels=levels,
-                                       log_reference_size=log_reference_size)
     pri = spec.priors
     coords: dict[str, Any] = {"species": inputs.species}
     for level, taxa in inputs.taxa.items():
         coords[level] = taxa.labels
+    intercept_mean = pri["intercept"].get("mean", "auto")
+    if intercept_mean == "auto":
+        intercept_mean = float(np.median(inputs.log_trait))
+    term_priors = {
+        "intercept": {"mean": intercept_mean, "sd": pri["intercept"]["sd"]},
+        "exponent": pri["exponent"],
+        "curvature": pri["curvature"],
+    }
+    terms = ["intercept", "exponent"] + (["curvature"] if spec.curvature != "none" else [])
+    varying = [t for t in terms if t in _varying_terms(spec)] if inputs.taxa else []
     with pm.Model(coords=coords) as model:
         log_size_obs = pm.Data("log_size_obs", inputs.log_size, dims="species")
         log_size_ref = pm.Data("log_size_ref", float(log_reference_size))
         for level, taxa in inputs.taxa.items():
             pm.Data(f"taxon_index__{level}", taxa.index, dims="species")
 
-        intercept_mean = pri["intercept"].get("mean", "auto")
-        if intercept_mean == "auto":
-            intercept_mean = float(np.median(inputs.log_trait))
-        varying = set(_varying_terms(spec))
-
-        def term(name: str, prior: dict[str, Any]) -> tuple[Any, Any]:
-            # (population value, per-species value) of one term of the law
-            if name in varying and inputs.taxa:
-                return _taxon_terms(name, prior, inputs, param, pri[f"{name}_sd"]["sd"])
-            value = pm.Normal(name, float(prior["mean"]), float(prior["sd"]))
-            return value, value
-
-        _, a = term("intercept", {"mean": intercept_mean, "sd": pri["intercept"]["sd"]})
-        exponent, b = term("exponent", pri["exponent"])
-        c = None
-        if spec.curvature != "none":
-            _, c = term("curvature", pri["curvature"])
-
+        # terms shared by all species
+        shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
+                  for t in terms if t not in varying}
         sigma = _residual_sd(spec)
         size = _true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma)
         if spec.size_error == "ratio":
             sigma = size.sigma
         centred_size = size.value - log_size_ref
+        feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
+                   "curvature": centred_size**2}
 
-        mu = a + b * centred_size
-        if c is not None:
-            mu = mu + c * centred_size**2
-        if spec.breakpoint == "one":
-            mu = mu + _hinge(spec, inputs, size.value, log_size_ref, exponent)
+        offset = sum((shared[t] * feature[t] for t in shared), pt.zeros_like(centred_size))
         for cov in spec.covariates:
-            mu = mu + _covariate_term(cov, inputs, pri["covariate"])
+            offset = offset + _covariate_term(cov, inputs, pri["covariate"])
+        if spec.breakpoint == "one" and "exponent" in shared:
+            offset = offset + _hinge(spec, inputs, size.value, log_size_ref, shared["exponent"])
 
         total_sd = sigma
         if spec.trait_error in ("known", "replicates"):
             sd_trait = pm.Data("sd_log_trait", inputs.sd_trait, dims="species")
             total_sd = pt.sqrt(sigma**2 + sd_trait**2)
+
+        mu = offset
+        if varying:
+            # the taxon values are whitened by the data (see _taxon_terms); the prior draws
+            # and `parameterisation: non-centred` use the plain non-centred form
+            whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
+            per_species = _taxon_terms(
+                varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
+                features=feature if whiten else None,
+                target=pt.as_tensor_variable(inputs.log_trait) - offset,
+                noise_var=total_sd**2 * pt.ones_like(centred_size),
+            )
+            for t in varying:
+                mu = mu + per_species[t] * feature[t]
+            if spec.breakpoint == "one" and "exponent" in varying:
+                mu = mu + _hinge(spec, inputs, size.value, log_size_ref, model["exponent"])
+
         if spec.residuals == "student_t":
             nu = pm.Gamma("nu", alpha=pri["nu"]["alpha"], beta=pri["nu"]["beta"])
             pm.StudentT(TRAIT, nu=nu, mu=mu, sigma=total_sd, observed=inputs.log_trait,
                         dims="species")
         else:
             pm.Normal(TRAIT, mu=mu, sigma=total_sd, observed=inputs.log_trait, dims="species")
-    log.debug("built model %s (taxon parameterisation %s)", spec.name, param)
+    log.debug("built model %s (taxon terms %s, prior_only=%s)", spec.name, varying, prior_only)
     return model
 
 
@@ -260,134 +264,12 @@ def select_levels(spec: ModelSpec, levels: list[str]) -> list[str]:
     return [lvl for lvl in levels if lvl in chosen]
 
 
-def taxon_parameterisation(
-    data: pd.DataFrame,
-    spec: ModelSpec,
-    *,
-    levels: list[str],
-    log_reference_size: float | None = None,
-) -> dict[str, float]:
-    """How centred the innermost taxon deviations of each varying term are written.
-
-    Returns ``{term: c}`` with ``c`` in [0, 1]: each deviation is ``sd^(1−c) · u`` with
-    ``u ~ N(0, sd^c)``, so ``c = 1`` is the centred form (best when each taxon's data pin its
-    deviation down) and ``c = 0`` the non-centred one (best when the prior dominates, the funnel
-    of Betancourt & Girolami 2015); values between are the partially non-centred forms of
-    Papaspiliopoulos et al. (2007). ``parameterisation: centred`` / ``non-centred`` fix ``c`` to
-    1 / 0. With ``auto``, ``c`` is the median over taxa of the share of a taxon's deviation
-    that its own data determine, ``τ² / (τ² + se²)`` (the complement of the shrinkage factor),
-    from a least-squares line per innermost taxon (se of its intercept at the reference size,
-    its slope, after the pooled quadratic when the spec is curved) and the between-taxon
-    variance ``τ²`` of DerSimonian & Laird (1986) within parents. Only the within-parent
-    deviations at the innermost level use ``c``: every other taxon value is drawn exactly
-    given the data-pinned means (see :func:`_taxon_terms`). Curvature deviations, which a
-    per-taxon line cannot estimate, get ``c = 0``.
-
-    References
-    ----------
-    .. [1] Betancourt, M. & Girolami, M. (2015). Hamiltonian Monte Carlo for hierarchical
-       models. In Current Trends in Bayesian Methodology with Applications, CRC.
-    .. [2] Papaspiliopoulos, O., Roberts, G. O. & Sköld, M. (2007). A general framework for
-       the parametrization of hierarchical models. Statistical Science 22:59–73.
-    .. [3] DerSimonian, R. & Laird, N. (1986). Meta-analysis in clinical trials. Controlled
-       Clinical Trials 7:177–188.
-    """
-    used = select_levels(spec, levels)
-    terms = _varying_terms(spec)
-    if not used:
-        return {}
-    choice = spec.taxa["parameterisation"]
-    if choice != "auto":
-        return dict.fromkeys(terms, 1.0 if choice == "centred" else 0.0)
-    parent = used[-2] if len(used) > 1 else None
-    estimates = _per_taxon_lines(data, spec, used[-1], parent, log_reference_size)
-    out = {}
-    for term in terms:
-        if term == "curvature" or estimates is None:
-            out[term] = 0.0
-            continue
-        est, se = estimates[term]
-        out[term] = round(_data_share(est, se, estimates["parent"]), 3)
-    return out
-
-
 def _varying_terms(spec: ModelSpec) -> list[str]:
     # the terms of the law that get taxon deviations
     terms = list(spec.taxa["vary"])
     if spec.curvature == "shared_and_taxa":
         terms.append("curvature")
     return terms
-
-
-def _per_taxon_lines(
-    data: pd.DataFrame,
-    spec: ModelSpec,
-    level: str,
-    parent: str | None,
-    log_reference_size: float | None,
-) -> dict[str, Any] | None:
-    # least-squares intercept (at the reference size; the mean log size of the table if none
-    # is given) and slope per taxon, with standard errors; taxa with fewer than 3 species or no
-    # size spread are left out
-    centre = log_reference_size
-    if centre is None:
-        centre = float(np.mean(data["log_size"].to_numpy(dtype=float)))
-    y_all = data["log_trait"].to_numpy(dtype=float)
-    bend = np.zeros(len(data))
-    if spec.curvature != "none" and len(data) > 3:
-        # a curved law makes straight per-taxon slopes differ by size range; take out the
-        # pooled quadratic first
-        dx = data["log_size"].to_numpy(dtype=float) - centre
-        bend = np.polyfit(dx, y_all, 2)[0] * dx**2
-    bend_of = pd.Series(bend, index=data.index)
-    rows: dict[str, list[Any]] = {"a": [], "va": [], "b": [], "vb": [], "parent": []}
-    sse, dof = 0.0, 0
-    for _, group in data.groupby(level, sort=False):
-        x = group["log_size"].to_numpy(dtype=float) - centre
-        y = group["log_trait"].to_numpy(dtype=float) - bend_of.loc[group.index].to_numpy()
-        n = len(x)
-        sxx = float(np.sum((x - x.mean()) ** 2))
-        if n < 3 or sxx <= 1e-12:
-            continue
-        slope = float(np.sum((x - x.mean()) * (y - y.mean())) / sxx)
-        icept = float(y.mean() - slope * x.mean())
-        sse += float(np.sum((y - icept - slope * x) ** 2))
-        dof += n - 2
-        rows["parent"].append(str(group[parent].iloc[0]) if parent else "")
-        rows["a"].append(icept)
-        rows["va"].append(1.0 / n + x.mean() ** 2 / sxx)
-        rows["b"].append(slope)
-        rows["vb"].append(1.0 / sxx)
-    if len(rows["a"]) < 2:
-        return None
-    # one residual variance pooled over taxa: per-taxon estimates from a handful of species
-    # are too noisy for the weights (they inflate Q and so τ²)
-    pooled = sse / max(dof, 1)
-    arr = {k: np.asarray(v) for k, v in rows.items()}
-    return {"intercept": (arr["a"], np.sqrt(pooled * arr["va"])),
-            "exponent": (arr["b"], np.sqrt(pooled * arr["vb"])), "parent": arr["parent"]}
-
-
-def _data_share(estimate: np.ndarray, se: np.ndarray, parent: np.ndarray) -> float:
-    # DerSimonian–Laird moment estimate of the between-taxon variance within parents (Q summed
-    # over parents, k − P degrees of freedom), then the median share τ²/(τ² + se²) of a
-    # taxon's deviation that its own data determine
-    w = 1.0 / np.maximum(se, 1e-12) ** 2
-    q, dof, denom = 0.0, 0, 0.0
-    for label in np.unique(parent):
-        sel = parent == label
-        if sel.sum() < 2:
-            continue
-        ws, es = w[sel], estimate[sel]
-        q += float(np.sum(ws * (es - np.sum(ws * es) / np.sum(ws)) ** 2))
-        dof += int(sel.sum()) - 1
-        denom += float(np.sum(ws) - np.sum(ws**2) / np.sum(ws))
-    if dof == 0 or denom <= 0.0:
-        return 0.0
-    tau2 = max(0.0, (q - dof) / denom)
-    if tau2 <= 0.0:
-        return 0.0
-    return float(np.median(tau2 / (tau2 + se**2)))
 
 
 _TAXON_TERMS = ("intercept", "exponent", "curvature")
@@ -586,249 +468,196 @@ def _true_log_size(spec: ModelSpec, inputs: _Inputs, log_size_obs: Any, *, sigma
 
 
 def _taxon_terms(
-    term: str,
-    prior: dict[str, float],
+    terms: list[str],
+    priors: dict[str, dict[str, float]],
+    sd_scales: dict[str, float],
     inputs: _Inputs,
-    param: dict[str, float],
-    sd_scale: float,
-) -> tuple[Any, Any]:
-    """Population value of ``term`` and its per-species value through the taxon tree.
+    features: dict[str, Any] | None,
+    target: Any,
+    noise_var: Any,
+) -> dict[str, Any]:
+    """Population and taxon values of the varying ``terms``; returns per-species values.
 
-    The model is the usual nested one: population ``p ~ N(m0, s0)``, each outermost taxon
-    ``N(p, s_1)``, each inner taxon ``N(parent, s_l)``. Only the innermost taxon values enter
-    the likelihood, so the sampler is given the quantities the data pin down, and everything
-    else as an exact conditional draw (written by hand: no library offers this form):
+    The model is the usual nested one: the population values ``p ~ N(m0, s0²)`` per term,
+    each outermost taxon ``N(p, s_1²)``, each inner taxon ``N(parent, s_l²)``, with one SD per
+    term and level and the terms independent a priori. What the sampler sees is a whitened
+    form of it, written by hand because no library offers it: one standard normal per term
+    and taxon (``<term>_w``, population included), mapped to the taxon values through the
+    exact conditional distribution of each value given its parent and the data below it
+    (``features``, ``target`` and ``noise_var``: the law is
+    ``target_i = Σ_term value_term,taxon(i) · feature_term,i + noise``, noise variance
+    ``noise_var_i``). Messages pass up the tree (each taxon's data, then each parent's
+    children) and values are drawn down it, root first (Gaussian belief propagation, e.g.
+    Bishop 2006, ch. 8.4; with the prior step and the data message combined as in the Kalman
+    smoother). The map is a change of variables: a potential adds the values' prior density
+    and the log-Jacobian, so the model is exactly the nested one whatever the messages. When
+    the law is linear in the taxon values with normal noise, the messages are exact and the
+    standard normals are independent of everything else in the posterior: no funnel
+    whatever the SDs, from zero to large. Student-t residuals or a breakpoint make the
+    messages an approximation (normal noise, hinge left out); the model is still exact.
 
-    - the mean of each parent's children at the innermost level, ``<term>_group_mean``
-      (its marginal density, every upper value integrated out);
-    - the children's deviations from their parent's mean, in an orthonormal zero-sum basis per
-      parent, ``<term>_dev__<level>`` (centred), ``<term>_z__<level>`` (non-centred) or
-      ``<term>_u__<level>`` (partially centred, see :func:`taxon_parameterisation`);
-    - innermost taxa with fewer than 3 species, as non-centred deviations from their parent,
-      ``<term>_z_few__<level>``;
-    - the population and upper taxon values given the group means, as standard normals
-      ``<term>_w``, one per upper node, mapped through the exact conditional of each node
-      given its parent and the group means below it (:func:`_tree_values`).
+    With ``features=None`` the messages are empty and the map is the plain non-centred form,
+    ``value = parent + s · w`` (the prior draws use it; so does ``parameterisation:
+    non-centred``).
 
-    The joint distribution is exactly that of the nested model; what changes is the geometry:
-    with few taxa at a level, the population value's posterior width scales with the taxon SD
-    (a funnel that neither the centred nor the non-centred form removes), while here the
-    sampler sees only ``<term>_w`` ~ N(0, 1) independent of the data given the rest. Both the
-    marginal density and the conditional draws follow the taxon tree (Gaussian message passing
-    up and down the tree, e.g. Bishop 2006, ch. 8.4), so they cost element-wise operations and
-    sums by parent only: no dense matrix is formed, factorised or solved.
+    Every step is element-wise over taxa with k × k blocks (k ≤ 3 terms) written out entry by
+    entry, so any backend (C, numba, JAX) compiles it to plain loops.
     """
     levels = list(inputs.taxa)
-    inner = levels[-1]
-    inner_taxa = inputs.taxa[inner]
-    m0, s0 = float(prior["mean"]), float(prior["sd"])
-    sds = [pm.HalfNormal(f"{term}_sd__{level}", sigma=sd_scale) for level in levels]
-    tree = _upper_tree(inputs)
-    n_groups = len(tree.group_nodes)
-    w = pm.Normal(f"{term}_w", 0.0, 1.0, shape=(len(tree.parent_node),))
-    means = None
-    if n_groups:
-        # the group means' marginal density (the upward pass of _tree_messages), with a
-        # forward simulator for prior draws
-        # (the group sizes ride along as a parameter so that the signature gives the shape)
-        means = pm.CustomDist(
-            f"{term}_group_mean", pt.stack(sds), tree.group_size,
-            logp=lambda value, sd, _k: _tree_messages(tree, m0, s0, sd, value)[2],
-            random=lambda sd, _k, rng=None, size=None: _tree_draw_means(tree, m0, s0, sd, rng,
-                                                                        size),
-            signature="(l),(g)->(g)", shape=(n_groups,),
-        )
-    upper = _tree_values(tree, m0, s0, sds, means, w)
-    population = pm.Deterministic(term, upper[0])
-    for k, level in enumerate(levels[:-1]):
-        lo = tree.offsets[k]
-        pm.Deterministic(f"taxon_{term}__{level}",
-                         upper[lo: lo + len(inputs.taxa[level].labels)], dims=level)
-    n_inner = len(inner_taxa.labels)
-    values = pt.zeros(n_inner)
-    informative = np.flatnonzero(tree.informative)
-    if n_groups:
-        # informative taxa: their group's mean plus zero-sum deviations (orthonormal basis)
-        values = pt.set_subtensor(values[informative],
-                                  means[tree.group_of_inner[informative]])
-    n_contrasts = tree.contrasts.shape[1]
-    if n_contrasts:
-        # partially non-centred (Papaspiliopoulos et al. 2007): dev = sd^(1−c)·u, u ~ N(0, sd^c)
-        c = float(param.get(term, 0.0))
-        if c >= 1.0:
-            dev = pm.Normal(f"{term}_dev__{inner}", 0.0, sds[-1], shape=(n_contrasts,))
-        elif c <= 0.0:
-            dev = sds[-1] * pm.Normal(f"{term}_z__{inner}", 0.0, 1.0, shape=(n_contrasts,))
+    k = len(terms)
+    tree = _taxon_tree(inputs)
+    sds = {term: [pm.HalfNormal(f"{term}_sd__{level}", sigma=sd_scales[term])
+                  for level in levels] for term in terms}
+    w = [pm.Normal(f"{term}_w", 0.0, 1.0, shape=(tree.n_nodes,)) for term in terms]
+    m0 = [float(priors[term]["mean"]) for term in terms]
+    s0 = [float(priors[term]["sd"]) for term in terms]
+    depths = tree.depths
+    # step SDs per depth (depth 0 is the population, whose step is its prior)
+    step = [[pt.as_tensor_variable(v) for v in s0]]
+    step += [[sds[term][lv] for term in terms] for lv in range(len(levels))]
+
+    # upward pass: information (precision P, vector h) of each node from the data below it
+    inner = depths[-1]
+    if features is not None:
+        idx = inputs.taxa[levels[-1]].index
+        n_inner = len(inner)
+        weight = 1.0 / noise_var
+        x = [features[term] for term in terms]
+        P = [[None] * k for _ in range(k)]
+        for i in range(k):
+            for j in range(i + 1):
+                P[i][j] = P[j][i] = _segment_sum(x[i] * x[j] * weight, idx, n_inner)
+        h = [_segment_sum(x[i] * target * weight, idx, n_inner) for i in range(k)]
+    else:
+        P, h = None, None
+    info: list[Any] = [None] * len(depths)
+    chol: list[Any] = [None] * len(depths)
+    for d in range(len(depths) - 1, -1, -1):
+        info[d] = (P, h)
+        if P is None:
+            continue
+        D = step[d]
+        B = [[D[i] * P[i][j] * D[j] + (1.0 if i == j else 0.0) for j in range(k)]
+             for i in range(k)]
+        L = _cholesky(B)
+        chol[d] = L
+        if d == 0:
+            break
+        # the message a node sends its parent: N(parent; ·) with precision
+        # Q = (P⁻¹ + S)⁻¹ = P − (DP)ᵀ B⁻¹ (DP) and vector g = h − (DP)ᵀ B⁻¹ (D h), S = D²
+        DP = [[D[i] * P[i][j] for j in range(k)] for i in range(k)]
+        Y = [_cho_solve(L, [DP[i][c] for i in range(k)]) for c in range(k)]  # columns
+        z = _cho_solve(L, [D[i] * h[i] for i in range(k)])
+        Q = [[P[i][j] - sum(DP[m][i] * Y[j][m] for m in range(k)) for j in range(k)]
+             for i in range(k)]
+        g = [h[i] - sum(DP[m][i] * z[m] for m in range(k)) for i in range(k)]
+        parents = tree.parent[depths[d]] - depths[d - 1][0]
+        n_par = len(depths[d - 1])
+        P = [[_segment_sum(Q[i][j], parents, n_par) for j in range(k)] for i in range(k)]
+        h = [_segment_sum(g[i], parents, n_par) for i in range(k)]
+
+    # downward pass: each node given its parent value and its own information
+    values: list[list[Any]] = []
+    density = pt.as_tensor_variable(0.0)
+    for d, nodes in enumerate(depths):
+        D = step[d]
+        if d == 0:
+            parent = [pt.as_tensor_variable(np.full(1, v)) for v in m0]
         else:
-            u = pm.Normal(f"{term}_u__{inner}", 0.0, sds[-1] ** c, shape=(n_contrasts,))
-            dev = sds[-1] ** (1.0 - c) * u
-        values = values + (pt.as_tensor_variable(tree.contrasts) * dev[None, :]).sum(axis=1)
-    weak = np.flatnonzero(~tree.informative)
-    if weak.size:
-        # taxa whose own data cannot pin their deviation (fewer than _INFORMATIVE_MIN_SPECIES
-        # species): parent value plus a non-centred deviation
-        z_weak = pm.Normal(f"{term}_z_few__{inner}", 0.0, 1.0, shape=(weak.size,))
-        values = pt.set_subtensor(values[weak],
-                                  upper[tree.parent_node_of_inner[weak]] + sds[-1] * z_weak)
-    total = pm.Deterministic(f"taxon_{term}__{inner}", values, dims=inner)
-    return population, total[inner_taxa.index]
+            at = tree.parent[nodes] - depths[d - 1][0]
+            parent = [values[d - 1][i][at] for i in range(k)]
+        wd = [w[i][nodes] for i in range(k)]
+        P, h = info[d]
+        if P is None:
+            values.append([parent[i] + D[i] * wd[i] for i in range(k)])
+            continue
+        L = chol[d]
+        # value = parent + D u with u = B⁻¹ D (h − P·parent) + L⁻ᵀ w; the potential is the
+        # prior density of the value plus the log-Jacobian minus the N(0, 1) density of w:
+        # −Σ log diag L − |u|²/2 + |w|²/2 (no division by an SD: finite as any SD → 0)
+        resid = [h[i] - sum(P[i][j] * parent[j] for j in range(k)) for i in range(k)]
+        a = _cho_solve(L, [D[i] * resid[i] for i in range(k)])
+        e = _back_solve(L, wd)
+        u = [a[i] + e[i] for i in range(k)]
+        values.append([parent[i] + D[i] * u[i] for i in range(k)])
+        density = density + sum(
+            pt.sum(-pt.log(L[i][i]) - 0.5 * u[i] ** 2 + 0.5 * wd[i] ** 2) for i in range(k))
+    if features is not None:
+        pm.Potential("taxon_tree_density", density)
+
+    per_species = {}
+    inner_index = inputs.taxa[levels[-1]].index
+    for i, term in enumerate(terms):
+        pm.Deterministic(term, values[0][i][0])
+        for lv, level in enumerate(levels):
+            dims = level
+            var = pm.Deterministic(f"taxon_{term}__{level}", values[lv + 1][i], dims=dims)
+            if lv == len(levels) - 1:
+                per_species[term] = var[inner_index]
+    return per_species
 
 
 @dataclass
-class _Tree:
-    parent_node: np.ndarray  # per upper node (root 0, then each upper level), its parent; −1
-    offsets: list[int]  # start of each upper level's taxa in the upper nodes (root is node 0)
-    parent_node_of_inner: np.ndarray  # per innermost taxon, its parent's upper node
-    informative: np.ndarray  # per innermost taxon: enough species to pin its deviation
-    group_nodes: np.ndarray  # upper nodes that have informative innermost children
-    group_size: np.ndarray  # per group node, its number of informative innermost children
-    group_of_inner: np.ndarray  # per innermost taxon, its group (index into group_nodes; −1)
-    contrasts: np.ndarray  # (innermost taxa, contrasts): orthonormal zero-sum basis per group
+class _TaxonTree:
+    parent: np.ndarray  # per node (population 0, then each level's taxa), its parent; −1
+    depths: list[np.ndarray]  # node indices by depth: [0], then each level outer to inner
 
-    def depths(self) -> list[np.ndarray]:
-        """Upper node indices by depth: the root, then each upper taxon level."""
-        bounds = [0, *self.offsets, len(self.parent_node)]
-        return [np.arange(lo, hi) for lo, hi in itertools.pairwise(bounds)]
+    @property
+    def n_nodes(self) -> int:
+        return len(self.parent)
 
 
-def _upper_tree(inputs: _Inputs) -> _Tree:
-    levels = list(inputs.taxa)
-    parent_node = [-1]  # the root (population) has no parent
-    offsets = []
-    for k, level in enumerate(levels[:-1]):
-        offsets.append(len(parent_node))
+def _taxon_tree(inputs: _Inputs) -> _TaxonTree:
+    parent = [-1]
+    depths = [np.array([0])]
+    for k, level in enumerate(inputs.taxa):
         taxa = inputs.taxa[level]
+        start = len(parent)
         if k == 0:
-            parent_node += [0] * len(taxa.labels)
+            parent += [0] * len(taxa.labels)
         else:
-            parent_node += [offsets[k - 1] + int(p) for p in taxa.parent]
-    inner = inputs.taxa[levels[-1]]
-    n_inner = len(inner.labels)
-    if len(levels) == 1:
-        parent_of_inner = np.zeros(n_inner, dtype=int)
-    else:
-        parent_of_inner = offsets[-1] + np.asarray(inner.parent, dtype=int)
-    species = np.bincount(inner.index, minlength=n_inner)
-    informative = species >= _INFORMATIVE_MIN_SPECIES
-    group_nodes = np.unique(parent_of_inner[informative])
-    group_of_inner = np.full(n_inner, -1)
-    group_of_inner[informative] = np.searchsorted(group_nodes, parent_of_inner[informative])
-    blocks = [np.zeros((n_inner, 0))]
-    for group in range(len(group_nodes)):
-        members = np.flatnonzero(group_of_inner == group)
-        basis = np.zeros((n_inner, len(members) - 1))
-        basis[members, :] = _helmert(len(members))
-        blocks.append(basis)
-    group_size = np.bincount(group_of_inner[informative], minlength=len(group_nodes))
-    return _Tree(parent_node=np.asarray(parent_node), offsets=offsets,
-                 parent_node_of_inner=parent_of_inner, informative=informative,
-                 group_nodes=group_nodes, group_size=group_size.astype(float),
-                 group_of_inner=group_of_inner, contrasts=np.concatenate(blocks, axis=1))
+            parent += [int(depths[-1][0]) + int(p) for p in taxa.parent]
+        depths.append(np.arange(start, len(parent)))
+    return _TaxonTree(parent=np.asarray(parent), depths=depths)
 
 
-def _informative_nodes(tree: _Tree) -> list[np.ndarray]:
-    # per depth, the positions (within the depth) of the upper nodes that have informative
-    # innermost taxa below them; these are the nodes that receive a message from the data
-    depths = tree.depths()
-    has = np.zeros(len(tree.parent_node), dtype=bool)
-    has[tree.group_nodes] = True
-    for d in range(len(depths) - 1, 0, -1):
-        has[tree.parent_node[depths[d][has[depths[d]]]]] = True
-    return [np.flatnonzero(has[nodes]) for nodes in depths]
+def _segment_sum(values: Any, index: np.ndarray, n: int) -> Any:
+    # sums of values by group (index per element into n groups)
+    return pt.inc_subtensor(pt.zeros(n)[index], values)
 
 
-def _tree_messages(tree: _Tree, m0: float, s0: float, sd: Any, means: Any
-                   ) -> tuple[list[Any], list[Any], Any]:
-    """Upward pass: each informative upper node's message from the group means below it.
-
-    Returns per depth the message precision ``p`` and mean ``y`` of the informative nodes
-    (their order as in :func:`_informative_nodes`), and the log density of ``means`` with every
-    upper value integrated out. A group node's message is its group mean with precision
-    ``K / s_L²``; a child's message reaches its parent through the child's own normal step
-    (variance ``1/p + s²``), and a parent combines its children's messages by precision.
-    Combining messages ``N(y_c; v, 1/q_c)`` into ``N(y; v, 1/q)`` leaves the factor
-    ``∏ N(y_c; y, 1/q_c) · (2π/q)^½`` that is free of ``v``; the log density of the means is
-    the sum of these factors over the tree plus the root's ``N(y_root; m0, 1/p + s0²)``.
-    """
-    depths = tree.depths()
-    info = _informative_nodes(tree)
-    deep = len(depths) - 1
-    log2pi = float(np.log(2.0 * np.pi))
-    p = pt.as_tensor_variable(tree.group_size) / sd[-1] ** 2
-    y = means
-    ps: list[Any] = [None] * len(depths)
-    ys: list[Any] = [None] * len(depths)
-    logp = pt.as_tensor_variable(0.0)
-    for d in range(deep, 0, -1):
-        ps[d], ys[d] = p, y
-        q = p / (1.0 + sd[d - 1] ** 2 * p)  # the message as it reaches the parent
-        parents = tree.parent_node[depths[d][info[d]]] - depths[d - 1][0]
-        at = np.searchsorted(info[d - 1], parents)  # parent position among informative nodes
-        n_par = len(info[d - 1])
-        p = pt.inc_subtensor(pt.zeros(n_par)[at], q)
-        y = pt.inc_subtensor(pt.zeros(n_par)[at], q * ys[d]) / p
-        logp = logp + (-0.5 * pt.sum(q * (ys[d] - y[at]) ** 2) + 0.5 * pt.sum(pt.log(q))
-                       - 0.5 * pt.sum(pt.log(p)) - 0.5 * (len(info[d]) - n_par) * log2pi)
-    ps[0], ys[0] = p, y
-    q = p / (1.0 + s0**2 * p)
-    logp = logp + pt.sum(0.5 * pt.log(q) - 0.5 * q * (y - m0) ** 2 - 0.5 * log2pi)
-    return ps, ys, logp
+def _cholesky(B: list[list[Any]]) -> list[list[Any]]:
+    # Cholesky factor of a batch of small SPD matrices given entry by entry (lists of
+    # element-wise tensors): L[i][j] for j ≤ i
+    k = len(B)
+    L: list[list[Any]] = [[None] * k for _ in range(k)]
+    for j in range(k):
+        L[j][j] = pt.sqrt(B[j][j] - sum(L[j][m] ** 2 for m in range(j)))
+        for i in range(j + 1, k):
+            L[i][j] = (B[i][j] - sum(L[i][m] * L[j][m] for m in range(j))) / L[j][j]
+    return L
 
 
-def _tree_values(tree: _Tree, m0: float, s0: float, sds: list[Any], means: Any, w: Any) -> Any:
-    """Downward pass: every upper value given its parent and the group means below it.
-
-    A node with parent value ``v_p``, own step SD ``s`` and upward message ``(p, y)`` is
-    normal with mean ``(v_p + s² p y) / (1 + s² p)`` and SD ``s / √(1 + s² p)`` (``p = 0`` for
-    nodes with no informative taxa below: the prior step). Written with ``w ~ N(0, 1)`` per
-    node this is exact and stays finite as any SD goes to zero.
-    """
-    depths = tree.depths()
-    info = _informative_nodes(tree)
-    if means is not None:
-        ps, ys, _ = _tree_messages(tree, m0, s0, pt.stack(sds), means)
-    values: list[Any] = []
-    for d, nodes in enumerate(depths):
-        s2 = s0**2 if d == 0 else sds[d - 1] ** 2
-        if d == 0:
-            parent = pt.as_tensor_variable(np.full(1, m0))
-        else:
-            parent = values[d - 1][tree.parent_node[nodes] - depths[d - 1][0]]
-        if means is None or not len(info[d]):
-            values.append(parent + pt.sqrt(s2) * w[nodes])
-            continue
-        p, py = ps[d], ps[d] * ys[d]
-        if len(info[d]) < len(nodes):  # nodes without informative taxa below get p = 0
-            p = pt.set_subtensor(pt.zeros(len(nodes))[info[d]], p)
-            py = pt.set_subtensor(pt.zeros(len(nodes))[info[d]], py)
-        denom = 1.0 + s2 * p
-        values.append((parent + s2 * py) / denom + pt.sqrt(s2 / denom) * w[nodes])
-    return pt.concatenate(values)
+def _forward_solve(L: list[list[Any]], b: list[Any]) -> list[Any]:
+    # L y = b
+    y: list[Any] = []
+    for i in range(len(b)):
+        y.append((b[i] - sum(L[i][m] * y[m] for m in range(i))) / L[i][i])
+    return y
 
 
-def _tree_draw_means(tree: _Tree, m0: float, s0: float, sd: np.ndarray,
-                     rng: np.random.Generator, size: Any) -> np.ndarray:
-    # forward draws of the group means (prior predictive): root, each level, group means
-    sd = np.asarray(sd, dtype=float)
-    batch = tuple(np.atleast_1d(size)) if size is not None else sd.shape[:-1]
-    sd = np.broadcast_to(sd, (*batch, sd.shape[-1]))
-    depths = tree.depths()
-    v = m0 + s0 * rng.standard_normal((*batch, 1))
-    for d in range(1, len(depths)):
-        parents = tree.parent_node[depths[d]] - depths[d - 1][0]
-        v = v[..., parents] + sd[..., d - 1: d] * rng.standard_normal((*batch, len(depths[d])))
-    at = tree.group_nodes - depths[-1][0]
-    noise = rng.standard_normal((*batch, len(at)))
-    return v[..., at] + sd[..., -1:] / np.sqrt(tree.group_size) * noise
+def _back_solve(L: list[list[Any]], y: list[Any]) -> list[Any]:
+    # Lᵀ x = y
+    k = len(y)
+    x: list[Any] = [None] * k
+    for i in range(k - 1, -1, -1):
+        x[i] = (y[i] - sum(L[m][i] * x[m] for m in range(i + 1, k))) / L[i][i]
+    return x
 
 
-def _helmert(k: int) -> np.ndarray:
-    """(k, k − 1) orthonormal basis of the vectors of length k that sum to zero (Helmert)."""
-    basis = np.zeros((k, max(k - 1, 0)))
-    for c in range(1, k):
-        basis[:c, c - 1] = 1.0 / np.sqrt(c * (c + 1))
-        basis[c, c - 1] = -c / np.sqrt(c * (c + 1))
-    return basis
+def _cho_solve(L: list[list[Any]], b: list[Any]) -> list[Any]:
+    # B x = b with B = L Lᵀ
+    return _back_solve(L, _forward_solve(L, b))
 
 
 def _hinge(spec: ModelSpec, inputs: _Inputs, x: Any, x_ref: Any, exponent: Any) -> Any:

@@ -147,7 +147,8 @@ def calibration_records(
 
     if spec.priors["intercept"].get("mean", "auto") == "auto":
         log.warning("SBC with a data-dependent intercept prior: ranks need not be uniform")
-    prior_model = build_model(template, spec, levels=levels, log_reference_size=log_reference_size)
+    prior_model = build_model(template, spec, levels=levels,
+                              log_reference_size=log_reference_size, prior_only=True)
     with prior_model:
         prior = pm.sample_prior_predictive(draws=replicates, random_seed=seed)
     records = []
