@@ -128,6 +128,9 @@ def test_same_seed_gives_identical_draws_on_the_default_backend(
     other = fit_model(_tiny_model(), seed=12, **SMALL)
     assert not np.array_equal(other.posterior["exponent"].values,
                               tiny_fit.posterior["exponent"].values)
+    # the predictive draws follow the seed too (JAX mode compiles a copy of the generator)
+    assert not np.array_equal(other.posterior_predictive["trait"].values,
+                              tiny_fit.posterior_predictive["trait"].values)
 
 
 @pytest.mark.mcmc
