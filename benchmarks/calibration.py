@@ -58,6 +58,7 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=20261202)
     parser.add_argument("--draws", type=int, default=500)
     parser.add_argument("--tune", type=int, default=700)
+    parser.add_argument("--bins", type=int, default=10, help="rank histogram bins")
     parser.add_argument("--per-process", type=int, default=10,
                         help="replicates fitted by one worker process before a fresh one starts")
     parser.add_argument("--out", default="benchmarks/calibration.json")
@@ -94,7 +95,8 @@ def main() -> None:
             records += json.loads(out.read_text(encoding="utf-8"))
             print(f"replicates {lo + 1}-{hi} of {args.replicates} done, "
                   f"{time.perf_counter() - start:.0f} s", flush=True)
-    result = summarise_calibration(records, parameters=PARAMETERS, coverage_of=COVERAGE_OF)
+    result = summarise_calibration(records, parameters=PARAMETERS, coverage_of=COVERAGE_OF,
+                                   bins=args.bins)
     seconds = time.perf_counter() - start
     print(f"SBC: {args.replicates} replicates, {result.n_draws} thinned draws, "
           f"{result.bins} bins, {seconds:.0f} s")

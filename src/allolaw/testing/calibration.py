@@ -185,9 +185,20 @@ def calibration_records(
             record["hits"] = int(np.sum((lo < truth_vec) & (truth_vec < hi)))
             record["intervals"] = int(truth_vec.size)
         records.append(record)
+        _release_jax_programs()
         log.info("SBC replicate %d (%d of %d here): %d divergences", r + 1, len(records),
                  len(chosen), record["divergences"])
     return records
+
+
+def _release_jax_programs() -> None:
+    # each replicate's sampler is a new JAX program; free the compiled ones (a long study in
+    # one process ran out of JIT code memory)
+    import sys
+
+    jax = sys.modules.get("jax")
+    if jax is not None:
+        jax.clear_caches()
 
 
 def summarise_calibration(
