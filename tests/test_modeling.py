@@ -386,6 +386,25 @@ def test_demo_truth_is_recovered(tmp_path, dataset, model, parameters):
         assert _inside_90(draws, value), (name, np.quantile(draws, [0.05, 0.95]), value)
 
 
+@pytest.mark.mcmc
+@pytest.mark.slow  # four fits of the 172-species island survey: a few minutes
+def test_taxon_exponent_intervals_cover_the_demo_truth(tmp_path):
+    # Coverage study on the demo generator (benchmarks/taxon_coverage.py, small version):
+    # four fresh island surveys, 40 family exponents; central 90% intervals should cover
+    # about 90%. With 40 intervals the binomial SE is ~0.05, so the band 0.7-1.0 is about
+    # ±4 SE (common practice, no source); the full study runs more datasets by script.
+    import subprocess
+    import sys
+
+    out = tmp_path / "coverage.json"
+    subprocess.run([sys.executable, str(REPO / "benchmarks" / "taxon_coverage.py"),
+                    "--seeds", "4", "--out", str(out)], check=True, cwd=REPO)
+    result = json.loads(out.read_text())
+    assert result["intervals"] == 40
+    assert 0.7 <= result["coverage"] <= 1.0, result["coverage"]
+    assert all(r["divergences"] == 0 for r in result["records"])
+
+
 def test_simulated_tables_have_the_clean_csv_columns():
     sim = simulate_taxa(seed=1)
     expected = ["species", "order", "family", "log_size", "log_trait", "n_rows",
