@@ -1,4 +1,4 @@
-# allolaw: prepare -> fit -> check -> compare -> report. This file is an index only.
+# allolaw: prepare -> fit (and check) -> compare -> report. This file is an index only.
 from snakemake.utils import min_version, validate
 
 min_version("9.0")
@@ -13,7 +13,6 @@ validate(config, "config/schema.yaml")
 include: "workflow/rules/common.smk"
 include: "workflow/rules/prepare.smk"
 include: "workflow/rules/fit.smk"
-include: "workflow/rules/check.smk"
 include: "workflow/rules/compare.smk"
 include: "workflow/rules/report.smk"
 

@@ -197,3 +197,33 @@ def test_stuck_chain_is_caught_even_when_other_parameters_are_fixed():
     idata.posterior["error_ratio"] = idata.posterior["sigma"] * 0 + 1.0
     result, _ = check_fit(idata)
     assert result.diagnostic("rhat").status == "fail"
+
+
+def test_fit_with_check_writes_both_outputs_in_one_process(tmp_path, monkeypatch, caplog):
+    # the workflow's fit job runs `allolaw fit --check`: the fit, then the check stage on the
+    # posterior it wrote, with the check's own seconds in the log (benchmarks/batch_cost.py)
+    import yaml
+
+    from allolaw import fitting, runtime
+    from allolaw.cli import main
+
+    config = _config(tmp_path)
+    config_file = tmp_path / "config.yaml"
+    config_file.write_text(yaml.safe_dump({"results_dir": config["results_dir"],
+                                           "datasets": config["datasets"]}))
+    fitted = []
+
+    def fake_fit(config, dataset, model, *, threads=1, target_accept=None):
+        fitted.append((dataset, model, threads))
+        return _write_fit(config, line_posterior(seed=15))
+
+    monkeypatch.setattr(fitting, "fit_dataset_model", fake_fit)
+    monkeypatch.setattr(runtime, "configure_job", lambda threads: {})  # keep this process's env
+    with caplog.at_level("INFO", logger="allolaw.diagnostics"):
+        code = main(["fit", "--config", str(config_file), "--dataset", "toy", "--model",
+                     "pooled", "--threads", "2", "--check"])
+    assert code == 0
+    assert fitted == [("toy", "pooled", 2)]
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["verdict"] == "pass"
+    assert any("check done in" in r.getMessage() for r in caplog.records)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+import warnings
 from pathlib import Path
 
 import arviz as az
@@ -193,6 +194,42 @@ def test_model_without_observed_trait_is_refused() -> None:
         pm.Normal("intercept", 0.0, 1.0)
     with pytest.raises(ValueError, match="trait"):
         fit_model(model, seed=1)
+
+
+def test_lighter_jax_rewrites_leave_the_log_density_and_gradient_unchanged() -> None:
+    # fitting.lighter_jax_rewrites drops one algebraic rewrite from the JAX compile mode (for
+    # compile time); the compiled log density and gradient of a whitened two-level model with
+    # curvature must equal PyTensor's own evaluation of the same graph with no rewrite at all
+    # (Python implementation of each operation), to rounding error.
+    import pytensor
+    from pytensor.compile import mode as pt_mode
+
+    from allolaw.modeling import build_model
+    from allolaw.spec import load_spec
+    from allolaw.testing import simulate_curvature
+
+    fitting.lighter_jax_rewrites()
+    assert set(fitting.LIGHTER_REWRITES) <= set(pt_mode.predefined_modes["JAX"]
+                                                .provided_optimizer.exclude)
+    assert pt_mode.JAX is pt_mode.predefined_modes["JAX"]
+    sim = simulate_curvature(seed=5, curvature=-0.1, sigma=0.1, size_error_sd=0.05,
+                             taxa=(3, 2), level_names=("order", "genus"))
+    model = build_model(sim.data, load_spec(REPO / "models", "taxa_errors_curved_by_taxon"),
+                        levels=sim.levels, log_reference_size=0.0)
+    logp = model.logp()
+    outputs = [logp, *pytensor.grad(logp, model.value_vars)]
+    rng = np.random.default_rng(2)
+    point = model.initial_point()
+    values = [point[v.name] + rng.normal(0.0, 0.3, np.shape(point[v.name]))
+              for v in model.value_vars]
+    with warnings.catch_warnings():
+        # parameter checks (sigma > 0) cannot run inside JAX; the values here are valid
+        warnings.filterwarnings("ignore", message="Skipping Check", category=UserWarning)
+        fast = pytensor.function(model.value_vars, outputs, mode="JAX")(*values)
+    unrewritten = pt_mode.Mode(linker="py", optimizer=None)
+    plain = pytensor.function(model.value_vars, outputs, mode=unrewritten)(*values)
+    for a, b in zip(fast, plain, strict=True):
+        np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-9, atol=1e-9)
 
 
 def test_derived_seed_is_stable_across_processes_and_separates_models() -> None:

@@ -20,6 +20,14 @@ import pytensor
 import jax
 import jax.numpy as jnp
 jax.jit(lambda v: jnp.sin(v) * 2.0 + 1.0)(jnp.arange(3.0)).block_until_ready()
+# a gradient through a scatter-add (segment sums, as in the taxon tree) under the job's XLA
+# flags, against its closed form: d/dv sum_g (sum_{i in g} sin v_i)^2 = 2 S_g(i) cos v_i
+import numpy as np
+idx = np.array([0, 1, 0, 2, 1])
+v = np.linspace(0.1, 1.3, 5)
+grad = jax.jit(jax.grad(lambda v: jnp.sum(jnp.zeros(3).at[idx].add(jnp.sin(v)) ** 2)))(v)
+groups = np.bincount(idx, weights=np.sin(v), minlength=3)
+grad_error = float(np.max(np.abs(np.asarray(grad) - 2.0 * groups[idx] * np.cos(v))))
 print(json.dumps({
     "env": env,
     "environ": {k: os.environ[k] for k in env},
@@ -27,6 +35,8 @@ print(json.dumps({
     "jax_cache": jax.config.jax_compilation_cache_dir,
     "jax_min_time": jax.config.jax_persistent_cache_min_compile_time_secs,
     "devices": jax.local_device_count(),
+    "excluding": pytensor.config.optimizer_excluding,
+    "grad_error": grad_error,
 }))
 """
 
@@ -57,6 +67,11 @@ def test_configure_job_sets_threads_and_caches_that_libraries_use(tmp_path: Path
     # One XLA host device per thread, for numpyro's parallel chains.
     assert result["devices"] == 3
     assert "--xla_force_host_platform_device_count=3" in result["environ"]["XLA_FLAGS"]
+    # the compile-time settings (XLA runtime flags, one rewrite left out) took effect: the
+    # jitted function above ran under them
+    assert "--xla_cpu_use_thunk_runtime=false" in result["environ"]["XLA_FLAGS"]
+    assert result["excluding"] == "local_greedy_distributor"
+    assert result["grad_error"] < 1e-6  # float32 or float64, the compiled gradient is right
 
 
 def test_configure_job_counts_at_least_one_thread(tmp_path: Path) -> None:

@@ -86,6 +86,9 @@ def _build_parser() -> argparse.ArgumentParser:
 
     p = stage("fit", "Fit one model spec to one prepared dataset.", model=True)
     p.add_argument("--threads", type=int, default=1, help="cores for this job (default 1)")
+    p.add_argument("--check", action="store_true",
+                   help="then run the check stage in the same process, as the workflow does "
+                        "(one process start-up instead of two)")
     p.set_defaults(func=_run_fit)
 
     p = stage("check", "Diagnose one fit: convergence, sampler health, predictive checks.",
@@ -136,6 +139,11 @@ def _run_fit(args: argparse.Namespace) -> None:
     from allolaw.fitting import fit_dataset_model
 
     fit_dataset_model(config, args.dataset, args.model, threads=args.threads)
+    if args.check:
+        from allolaw.diagnostics import check_dataset_model
+
+        result = check_dataset_model(config, args.dataset, args.model, threads=args.threads)
+        print(f"{args.dataset}/{args.model}: {result}")
 
 
 def _run_check(args: argparse.Namespace) -> None:

@@ -72,6 +72,29 @@ _NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BAC
 _PREDICTIVE_COMPILE: dict[str, str] = {"mode": "FAST_COMPILE"}  # copied per call: PyMC edits it
 
 
+#: PyTensor graph rewrites left out when compiling the log density for JAX. The gradient of
+#: the whitened taxon tree (modeling._taxon_terms) is a graph of ~6,400 small operations;
+#: ``local_greedy_distributor`` (which factors a*b + a*c into a*(b + c)) took about half of
+#: its rewriting time: on island taxa_errors_curved_by_taxon the JAX compile of the log
+#: density and gradient fell from 20.7 s to 10.5 s without it, the rewritten graph is the
+#: same size (392 vs 391 nodes) and the fit's sampling time did not change (65.1 vs 67.7 s).
+#: It only simplifies algebra; the stability rewrites all stay.
+LIGHTER_REWRITES = ("local_greedy_distributor",)
+
+
+def lighter_jax_rewrites() -> None:
+    """Leave :data:`LIGHTER_REWRITES` out of PyTensor's JAX compile mode (idempotent)."""
+    # nutpie and PyMC's log-likelihood name the mode "JAX" (looked up in predefined_modes);
+    # PyMC's numpyro path uses pytensor.compile.mode.JAX directly: both are replaced
+    from pytensor.compile import mode
+
+    if all(name in mode.JAX.provided_optimizer.exclude for name in LIGHTER_REWRITES):
+        return
+    lighter = mode.JAX.excluding(*LIGHTER_REWRITES)
+    mode.JAX = lighter
+    mode.predefined_modes["JAX"] = lighter
+
+
 def _per_draw_compile() -> dict[str, str]:
     # compile mode of the functions called once per posterior draw (a fresh dict per call)
     try:
@@ -79,6 +102,7 @@ def _per_draw_compile() -> dict[str, str]:
     except ImportError:  # pragma: no cover - jax is a dependency; kept as a safe fallback
         return dict(_PREDICTIVE_COMPILE)
     _apply_jax_cache()
+    lighter_jax_rewrites()
     return {"mode": "JAX"}
 
 _VERSION_PACKAGES = (
@@ -416,6 +440,8 @@ def _sample(
         }
         if _NUTPIE_COMPILE.get("backend") == "jax":
             _apply_jax_cache()
+    if backend in ("numpyro", "nutpie"):
+        lighter_jax_rewrites()
     log.info("fit: %s sampling started", backend)
     start = time.perf_counter()
     idata = pm.sample(**kwargs)

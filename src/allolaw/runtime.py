@@ -61,14 +61,25 @@ def configure_job(threads: int) -> dict[str, str]:
     flags = os.environ.get("PYTENSOR_FLAGS", "")
     if "base_compiledir" not in flags:
         flags = ",".join(f for f in (flags, f"base_compiledir={pytensor_dir}") if f)
+    if "optimizer_excluding" not in flags:
+        # one algebraic rewrite took half the graph rewriting time of the whitened taxon models
+        # (allolaw.fitting.LIGHTER_REWRITES says more); this reaches PyTensor's default mode,
+        # fitting.lighter_jax_rewrites() its JAX mode
+        flags = ",".join((flags, "optimizer_excluding=local_greedy_distributor"))
     env["PYTENSOR_FLAGS"] = flags
     env["JAX_COMPILATION_CACHE_DIR"] = str(jax_dir)
     env["JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS"] = "0"
     env["JAX_PLATFORMS"] = "cpu"
     # One XLA host device per core (numpyro runs parallel chains on devices); no Eigen thread
     # pool inside a device, so a job never uses more than its cores.
+    # XLA:CPU's older whole-program runtime, without the newer fusion emitters, compiles the
+    # demo models' log density and gradient in 1.7 s instead of 10.4 s at the same cost per
+    # call (0.42 vs 0.41 ms; island taxa_errors_curved_by_taxon, benchmarks/README.md). Both
+    # flags exist in the pinned jaxlib, which logs that the first is deprecated; XLA stops on
+    # flags it does not know, so a jaxlib upgrade must re-check them.
     env["XLA_FLAGS"] = (
         f"--xla_force_host_platform_device_count={threads} --xla_cpu_multi_thread_eigen=false"
+        " --xla_cpu_use_thunk_runtime=false --xla_cpu_use_fusion_emitters=false"
     )
     os.environ.update(env)
     return env

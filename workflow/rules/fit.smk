@@ -1,3 +1,7 @@
+# One job fits a model and checks the fit (`allolaw fit --check`): the check reads the
+# posterior, may refit once on divergences (rewriting posterior.nc before the job ends) and
+# writes the check JSON. One process instead of two saves a start-up of the scientific stack
+# per model; `allolaw check` still runs the check alone, by hand.
 rule fit_model:
     input:
         clean=f"{RESULTS}/{{dataset}}/clean.csv",
@@ -5,6 +9,7 @@ rule fit_model:
         spec=model_spec,
     output:
         posterior=f"{RESULTS}/{{dataset}}/{{model}}/posterior.nc",
+        check=f"{RESULTS}/{{dataset}}/checks/{{model}}.json",
     log:
         f"{LOGS}/{{dataset}}/fit_{{model}}.log",
     benchmark:
@@ -20,4 +25,4 @@ rule fit_model:
         "../envs/allolaw.yaml"
     shell:
         "{params.cli} fit {params.opts} --dataset {wildcards.dataset} --model {wildcards.model}"
-        " --threads {threads} > {log} 2>&1"
+        " --threads {threads} --check > {log} 2>&1"
