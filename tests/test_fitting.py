@@ -18,6 +18,7 @@ from scipy import stats
 from allolaw import fitting
 from allolaw.errors import UserError
 from allolaw.fitting import derive_seed, fit_dataset_model, fit_model, resolve_backend
+from allolaw.runtime import LIGHTER_REWRITES
 
 REPO = Path(__file__).resolve().parents[1]
 SIGMA = 0.3  # known residual SD of the conjugate test model
@@ -209,7 +210,7 @@ def test_lighter_jax_rewrites_leave_the_log_density_and_gradient_unchanged() -> 
     from allolaw.testing import simulate_curvature
 
     fitting.lighter_jax_rewrites()
-    assert set(fitting.LIGHTER_REWRITES) <= set(pt_mode.predefined_modes["JAX"]
+    assert set(LIGHTER_REWRITES) <= set(pt_mode.predefined_modes["JAX"]
                                                 .provided_optimizer.exclude)
     assert pt_mode.JAX is pt_mode.predefined_modes["JAX"]
     sim = simulate_curvature(seed=5, curvature=-0.1, sigma=0.1, size_error_sd=0.05,

@@ -33,6 +33,7 @@ from allolaw import __version__
 from allolaw.errors import UserError
 from allolaw.io import atomic_path
 from allolaw.paths import clean_path, posterior_path, prepared_path
+from allolaw.runtime import LIGHTER_REWRITES
 
 if TYPE_CHECKING:
     import arviz as az
@@ -72,18 +73,8 @@ _NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BAC
 _PREDICTIVE_COMPILE: dict[str, str] = {"mode": "FAST_COMPILE"}  # copied per call: PyMC edits it
 
 
-#: PyTensor graph rewrites left out when compiling the log density for JAX. The gradient of
-#: the whitened taxon tree (modeling._taxon_terms) is a graph of ~6,400 small operations;
-#: ``local_greedy_distributor`` (which factors a*b + a*c into a*(b + c)) took about half of
-#: its rewriting time: on island taxa_errors_curved_by_taxon the JAX compile of the log
-#: density and gradient fell from 20.7 s to 10.5 s without it, the rewritten graph is the
-#: same size (392 vs 391 nodes) and the fit's sampling time did not change (65.1 vs 67.7 s).
-#: It only simplifies algebra; the stability rewrites all stay.
-LIGHTER_REWRITES = ("local_greedy_distributor",)
-
-
 def lighter_jax_rewrites() -> None:
-    """Leave :data:`LIGHTER_REWRITES` out of PyTensor's JAX compile mode (idempotent)."""
+    """Leave :data:`allolaw.runtime.LIGHTER_REWRITES` out of PyTensor's JAX mode (idempotent)."""
     # nutpie and PyMC's log-likelihood name the mode "JAX" (looked up in predefined_modes);
     # PyMC's numpyro path uses pytensor.compile.mode.JAX directly: both are replaced
     from pytensor.compile import mode
