@@ -93,7 +93,6 @@ def _per_draw_compile() -> dict[str, str]:
     except ImportError:  # pragma: no cover - jax is a dependency; kept as a safe fallback
         return dict(_PREDICTIVE_COMPILE)
     _apply_jax_cache()
-    lighter_jax_rewrites()
     return {"mode": "JAX"}
 
 _VERSION_PACKAGES = (
@@ -174,6 +173,7 @@ def fit_model(
                "prior_model=build_model(..., prior_only=True) for its prior draws")
         raise ValueError(msg)
     wall_start = time.perf_counter()
+    lighter_jax_rewrites()  # every JAX compile of the fit: sampling, log-likelihood, predictive
     chosen = resolve_backend(backend)
     seeds = np.random.SeedSequence(int(seed)).generate_state(3)
     progress = _show_progress()
@@ -431,8 +431,6 @@ def _sample(
         }
         if _NUTPIE_COMPILE.get("backend") == "jax":
             _apply_jax_cache()
-    if backend in ("numpyro", "nutpie"):
-        lighter_jax_rewrites()
     log.info("fit: %s sampling started", backend)
     start = time.perf_counter()
     idata = pm.sample(**kwargs)
