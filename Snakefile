@@ -1,4 +1,4 @@
-# allolaw: prepare -> fit (and check) -> compare -> report. This file is an index only.
+# allolaw: prepare -> fit (and check) -> compare (and report) -> index. This file is an index only.
 from snakemake.utils import min_version, validate
 
 min_version("9.0")

@@ -6,8 +6,11 @@ each fit job's log (the fit job runs the check too; its line "check done in X s"
 refit wall times the check keeps in each ``posterior.nc`` (attribute ``refit``). Prints, per
 dataset, the seconds of the fits (job seconds less the check's), of the refits, of the rest
 (prepare, checks without their refits, hypotheses and report), and the share of the rest in
-the fit time (the speed target: hypotheses + checks + report ≤ 10% of fit time). Batches run
-before the check moved into the fit job (separate ``check_<model>`` jobs) are read too.
+the fit time (the speed target: hypotheses + checks + report ≤ 10% of fit time). The compare
+job writes the report too; its log line "report <dataset>: wrote ... (N kB, X s)" moves those
+seconds from compare to report. Batches run before the check moved into the fit job (separate
+``check_<model>`` jobs) or before the report moved into the compare job (``report`` jobs) are
+read too.
 
     .venv/bin/python benchmarks/batch_cost.py            # the batch in this checkout
     .venv/bin/python benchmarks/batch_cost.py /tmp/run   # the batch run in another folder
@@ -57,6 +60,10 @@ def main() -> None:
         inside = sum(_check_seconds(log) for log in (work / "logs" / dataset).glob("fit_*.log"))
         by_stage["fit"] = by_stage.get("fit", 0.0) - inside
         by_stage["check"] = by_stage.get("check", 0.0) + inside
+        # the report runs inside the compare job: its seconds move from "compare" to "report"
+        inside = _report_seconds(work / "logs" / dataset / "compare.log")
+        by_stage["compare"] = by_stage.get("compare", 0.0) - inside
+        by_stage["report"] = by_stage.get("report", 0.0) + inside
         fit_s = float(by_stage.get("fit", 0.0))
         rest_s = float(by_stage.sum()) - fit_s - refit_s
         rows.append({
@@ -89,6 +96,15 @@ def main() -> None:
 def _check_seconds(log: Path) -> float:
     # the check stage's own line in a fit job's log (diagnostics.check_dataset_model)
     found = re.findall(r"check done in ([0-9.]+) s", log.read_text(errors="replace"))
+    return float(found[-1]) if found else 0.0
+
+
+def _report_seconds(log: Path) -> float:
+    # the report's own line in a compare job's log (report.render_dataset_report)
+    if not log.is_file():
+        return 0.0
+    found = re.findall(r"report \S+: wrote .* \([0-9.]+ kB, ([0-9.]+) s\)",
+                       log.read_text(errors="replace"))
     return float(found[-1]) if found else 0.0
 
 

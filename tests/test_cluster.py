@@ -26,9 +26,9 @@ pytestmark = [pytest.mark.cluster, pytest.mark.mcmc]
 SCRIPTS = wr.REPO / ".ci" / "slurm"
 PARTITION = "allolaw"
 ACCOUNT = "allolaw-ci"
-# Jobs of the one-dataset batch (run twice: SLURM, local): prepare, compare, report, one fit (which
-# also checks) per (dataset, model), and one index.
-N_JOBS = sum(3 + len(models) for models in wr.ONE_DATASET.values()) + 1
+# Jobs of the one-dataset batch (run twice: SLURM, local): prepare, compare (which also writes
+# the report), one fit (which also checks) per (dataset, model), and one index.
+N_JOBS = sum(2 + len(models) for models in wr.ONE_DATASET.values()) + 1
 
 
 @pytest.fixture(scope="module")

@@ -145,6 +145,42 @@ def test_compare_dataset_writes_every_output_and_says_what_does_not_apply(tmp_pa
     assert brk["applicable"] is False
 
 
+def test_compare_with_report_writes_the_outputs_and_the_page_in_one_process(tmp_path,
+                                                                          monkeypatch):
+    # the workflow's compare job runs `allolaw compare --report`: the compare stage, then the
+    # page from the files it just wrote
+    import yaml
+
+    from allolaw import runtime
+    from allolaw.cli import main
+
+    config = _config(tmp_path)
+    results = config["results_dir"]
+    for name, factor in [("pooled", 1.0), ("narrow", 0.4)]:
+        idata = line_posterior(seed=5, spread_factor=factor)
+        idata.attrs["spec"] = json.dumps({"name": name, "residuals": "normal",
+                                          "curvature": "none", "breakpoint": "none",
+                                          "priors": {"exponent": {"mean": 1.0, "sd": 1.0}}})
+        path = paths.posterior_path(results, "toy", name)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        idata.to_netcdf(str(path))
+    config_file = tmp_path / "config.yaml"
+    config_file.write_text(yaml.safe_dump({"results_dir": results,
+                                           "reports_dir": str(tmp_path / "reports"),
+                                           "datasets": config["datasets"]}))
+    monkeypatch.setattr(runtime, "configure_job", lambda threads: {})  # keep this process's env
+    assert main(["compare", "--config", str(config_file), "--dataset", "toy", "--report"]) == 0
+
+    comp = pd.read_csv(paths.comparison_path(results, "toy"))
+    html = (tmp_path / "reports" / "toy.html").read_text(encoding="utf-8")
+    # the page's comparison table is the CSV just written, best model first
+    table = html[html.index('id="table-comparison"'):]
+    table = table[:table.index("</table>")]
+    rows = [table.index(f'data-col="model">{m}<') for m in comp["model"]]
+    assert len(rows) == 3
+    assert rows == sorted(rows)
+
+
 # --- curvature audit on simulated data with known truth (small real fits) ---------------------
 # Four small hierarchical fits take 2–5 minutes on this shared machine, so they are marked slow
 # (run with `pytest -m slow tests/test_comparison.py`).

@@ -10,9 +10,9 @@ import pymc as pm
 import pytest
 
 from allolaw.errors import UserError
+from allolaw.law import _softplus_np
 from allolaw.modeling import (
     BOLTZMANN_EV_PER_K,
-    _softplus_np,
     build_model,
     expected_log_trait,
     select_levels,

@@ -463,6 +463,7 @@ def test_missing_inputs_are_listed_on_the_page(tmp_path):
     (res / "hypotheses.csv").unlink()
     (res / "breakpoint.json").unlink()
     (res / CURVED / "posterior.nc").unlink()
+    (res / "clean.csv").unlink()
     html = report.render_dataset_report(config, "demo").read_text(encoding="utf-8")
     missing = html[html.index('id="missing-inputs"'):]
     missing = missing[:missing.index("</div>")]
@@ -470,6 +471,8 @@ def test_missing_inputs_are_listed_on_the_page(tmp_path):
     assert "breakpoint.json is missing" in missing
     assert f"The fit of model &#39;{CURVED}&#39; is missing" in missing
     assert "No named-exponent probabilities" in html
+    assert "clean.csv is missing" in missing
+    assert "No scatter plot: clean.csv is missing." in html
 
 
 def test_page_is_self_contained_and_small(rendered):

@@ -12,6 +12,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+
 _PROBE = r"""
 import json, os, sys
 from allolaw.runtime import configure_job
@@ -78,3 +80,44 @@ def test_configure_job_counts_at_least_one_thread(tmp_path: Path) -> None:
     result = _probe(tmp_path, 0)
     assert result["environ"]["OMP_NUM_THREADS"] == "1"
     assert result["devices"] == 1
+
+
+_ARVIZ_PROBE = r"""
+import json, sys
+import numpy as np
+if sys.argv[1] == "hide":
+    from allolaw.runtime import import_arviz_without_numba
+    import_arviz_without_numba()
+import arviz as az
+state = {"numba_imported": "numba" in sys.modules, "arviz_numba": az.Numba.numba_flag}
+import numba  # importable again once ArviZ is in
+import pytensor.tensor as pt
+from pytensor import function
+x = pt.dvector("x")
+state["pytensor_ok"] = float(function([x], (x ** 2).sum())(np.arange(3.0))) == 5.0
+draws = np.random.default_rng(7).standard_normal((4, 500, 3)).cumsum(axis=1) * 0.05
+draws += np.random.default_rng(8).standard_normal((4, 500, 3))
+data = az.convert_to_dataset({"theta": draws})
+state["diagnostics"] = [float(v) for v in np.concatenate([
+    az.ess(data, method="bulk")["theta"].values, az.ess(data, method="tail")["theta"].values,
+    az.rhat(data)["theta"].values, np.ravel(az.mcse(data, method="mean")["theta"].values)])]
+print(json.dumps(state))
+"""
+
+
+def _arviz_probe(mode: str) -> dict:
+    out = subprocess.run([sys.executable, "-c", _ARVIZ_PROBE, mode], capture_output=True,
+                         text=True, check=False, timeout=300)
+    assert out.returncode == 0, out.stderr
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def test_arviz_imported_without_numba_gives_arviz_own_numba_diagnostics() -> None:
+    # The CLI imports ArviZ with Numba hidden (no import-time Numba compile), so ArviZ takes
+    # its NumPy paths. They must give the diagnostics of its default Numba paths (the
+    # reference: ArviZ in a plain process), and Numba and PyTensor must still work after.
+    hidden, plain = _arviz_probe("hide"), _arviz_probe("plain")
+    assert (hidden["numba_imported"], hidden["arviz_numba"]) == (False, False)
+    assert (plain["numba_imported"], plain["arviz_numba"]) == (True, True)
+    assert hidden["pytensor_ok"] is True
+    np.testing.assert_allclose(hidden["diagnostics"], plain["diagnostics"], rtol=1e-10)

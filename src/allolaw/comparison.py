@@ -30,7 +30,7 @@ import pandas as pd
 
 from allolaw import paths
 from allolaw.config import dataset_config, hypotheses_config
-from allolaw.diagnostics import pareto_k_threshold, read_posterior
+from allolaw.diagnostics import pareto_k_threshold, read_groups
 from allolaw.hypotheses import compare_hypotheses
 from allolaw.io import atomic_path, write_json
 
@@ -56,6 +56,8 @@ STACKING_NOTE = (
     "stacking weights are the weights of the best predictive mixture of the models (Yao et "
     "al. 2018); they are not posterior model probabilities"
 )
+#: The groups of a fit this stage reads (not the predictive draws, prior or sampler stats).
+_COMPARE_GROUPS = ("posterior", "log_likelihood", "constant_data", "observed_data")
 # Curvature audit verdict bands on the share of between-taxon exponent variance explained
 # (our own reading aids: common practice, no source).
 _MOST = 0.5
@@ -79,7 +81,7 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
     for model in ds["models"]:
         path = paths.posterior_path(results, dataset, model)
         if path.is_file():
-            fits[model] = read_posterior(path)
+            fits[model] = read_groups(path, _COMPARE_GROUPS)
         else:
             missing.append(model)
             log.warning("%s/%s: no posterior.nc; left out of the comparison", dataset, model)

@@ -35,6 +35,7 @@ from markupsafe import Markup
 from allolaw import __version__, paths, plots
 from allolaw.config import config_sha256, dataset_config, hypotheses_config
 from allolaw.io import write_text
+from allolaw.law import TAXON_TERMS, expected_log_trait
 
 __all__ = ["read_benchmarks", "render_dataset_report", "render_index", "summarise_dataset"]
 
@@ -346,32 +347,15 @@ def _read_posterior(path: Path, missing: list[str], model: str) -> Any:
     if not path.is_file():
         missing.append(f"The fit of model '{model}' is missing ({path}); run 'allolaw fit'.")
         return None
+    from allolaw.diagnostics import read_groups
+
     try:
-        idata = _read_groups(path, ("posterior", "constant_data"))
+        # only the groups the page uses (the predictive checks come from the check file)
+        idata = read_groups(path, ("posterior", "constant_data"))
     except (OSError, ValueError, KeyError) as err:
         missing.append(f"The fit of model '{model}' could not be read ({path}): {err}.")
         return None
     return _squeeze_constants(idata)
-
-
-def _read_groups(path: Path, groups: tuple[str, ...]) -> Any:
-    # Only the groups the page uses (the predictive checks come from the check file): reading
-    # every group of a fit costs about twice as long (benchmarks/report_build.py).
-    import arviz as az
-    import xarray as xr
-
-    with xr.open_dataset(path, engine="h5netcdf") as root:
-        attrs = dict(root.attrs)
-    data = {}
-    for group in groups:
-        try:
-            data[group] = xr.load_dataset(path, group=group, engine="h5netcdf")
-        except OSError:
-            if group == "posterior":
-                raise
-    idata = az.InferenceData(**data)
-    idata.attrs.update(attrs)
-    return idata
 
 
 def _squeeze_constants(idata: Any) -> Any:
@@ -928,7 +912,9 @@ def _figures(
     config: dict[str, Any],
     dataset: str,
 ) -> dict[str, Any]:
-    figs: dict[str, Any] = {"notes": []}
+    # every key the template reads, so a page without clean.csv still renders (and says why)
+    figs: dict[str, Any] = {"notes": [], "scatter": None, "scatter_notes": "", "forest": [],
+                            "local": [], "breaks": []}
     idata = fits.get(primary)
     named = _named_exponents(config, dataset)
     if clean is None or "log_size" not in clean.columns:
@@ -1083,17 +1069,12 @@ def _named_exponents(config: dict[str, Any], dataset: str) -> list[tuple[str, fl
 
 
 def _has_taxon_terms(idata: Any, level: str) -> bool:
-    return any(f"taxon_{t}__{level}" in idata.posterior
-               for t in ("intercept", "exponent", "curvature"))
+    return any(f"taxon_{t}__{level}" in idata.posterior for t in TAXON_TERMS)
 
 
 def _law(idata: Any, log_size: np.ndarray, *, level: str | None = None,
          taxon: str | None = None) -> np.ndarray:
     """Posterior draws of the expected log trait on a grid, at most 1000 draws."""
-    try:
-        from allolaw.modeling import expected_log_trait
-    except ImportError:
-        expected_log_trait = _expected_log_trait_fallback
     out = expected_log_trait(idata, log_size, level=level, taxon=taxon)
     if out.shape[0] > 1000:
         out = out[np.linspace(0, out.shape[0] - 1, 1000).astype(int)]
@@ -1104,29 +1085,6 @@ def _local_exponent(idata: Any, log_size: np.ndarray) -> np.ndarray:
     """Draws of d log trait / d log size along ``log_size`` (central differences inside,
     second-order one-sided at the ends, so exact for a quadratic law)."""
     return np.gradient(_law(idata, log_size), log_size, axis=1, edge_order=2)
-
-
-def _expected_log_trait_fallback(
-    idata: Any, log_size: np.ndarray, *, level: str | None = None, taxon: str | None = None
-) -> np.ndarray:
-    # intercept + exponent·dx + curvature·dx², per taxon where the fit has taxon terms;
-    # used only when allolaw.modeling cannot be imported. No breakpoint term.
-    post = idata.posterior
-    ref = float(idata.constant_data["log_size_ref"].values)
-
-    def draws(name: str) -> np.ndarray:
-        var = post[name]
-        tvar = f"taxon_{name}__{level}"
-        if level is not None and tvar in post:
-            labels = [str(v) for v in post[tvar][level].values]
-            var = post[tvar].isel({level: labels.index(str(taxon))})
-        return np.asarray(var.values, dtype=float).reshape(-1)
-
-    dx = np.asarray(log_size, dtype=float)[None, :] - ref
-    out = draws("intercept")[:, None] + draws("exponent")[:, None] * dx
-    if "curvature" in post:
-        out = out + draws("curvature")[:, None] * dx**2
-    return out
 
 
 def _readable(path: Path) -> None:

@@ -8,9 +8,10 @@ caches on local disk, where they stay warm across the jobs of a batch.
 from __future__ import annotations
 
 import os
+import sys
 from pathlib import Path
 
-__all__ = ["LIGHTER_REWRITES", "cache_root", "configure_job"]
+__all__ = ["LIGHTER_REWRITES", "cache_root", "configure_job", "import_arviz_without_numba"]
 
 #: PyTensor graph rewrites left out of compilation. The gradient of the whitened taxon tree
 #: (modeling._taxon_terms) is a graph of ~6,400 small operations; ``local_greedy_distributor``
@@ -90,3 +91,25 @@ def configure_job(threads: int) -> dict[str, str]:
     )
     os.environ.update(env)
     return env
+
+
+def import_arviz_without_numba() -> None:
+    """Import ArviZ with Numba hidden, so ArviZ takes its NumPy paths in this process.
+
+    ArviZ 0.23 uses Numba whenever it is installed (PyTensor installs it): it compiles a Numba
+    ufunc while being imported (``arviz.stats.ecdf_utils``, for ECDF bands, which we never
+    draw) and jit-compiles its variance helper on first use, about 1 s per process in all
+    (``import arviz``: 2.6 s with Numba, 1.9 s without; benchmarks/README.md). No ArviZ
+    setting avoids the import-time compile, so Numba is hidden from ``sys.modules`` for the
+    length of the import only; afterwards it imports as usual (PyTensor's Numba backend still
+    works). Does nothing if ArviZ or Numba is already imported. Called by the CLI stages that
+    read fits, before anything imports PyMC (which imports ArviZ).
+    """
+    if "arviz" in sys.modules or "numba" in sys.modules:
+        return
+    sys.modules["numba"] = None  # type: ignore[assignment]  # import numba -> ImportError
+    try:
+        import arviz
+    finally:
+        del sys.modules["numba"]
+    arviz.Numba.disable_numba()  # already off (Numba was not found); say so explicitly

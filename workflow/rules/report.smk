@@ -1,29 +1,5 @@
-rule render_report:
-    input:
-        clean=f"{RESULTS}/{{dataset}}/clean.csv",
-        ledger=f"{RESULTS}/{{dataset}}/ledger.csv",
-        prepared=f"{RESULTS}/{{dataset}}/prepared.json",
-        posteriors=dataset_posteriors,
-        checks=dataset_checks,
-        comparison=f"{RESULTS}/{{dataset}}/comparison.csv",
-        hypotheses=f"{RESULTS}/{{dataset}}/hypotheses.csv",
-        curvature=f"{RESULTS}/{{dataset}}/curvature_audit.json",
-        breakpoint=f"{RESULTS}/{{dataset}}/breakpoint.json",
-    output:
-        html=f"{REPORTS}/{{dataset}}.html",
-    log:
-        f"{LOGS}/{{dataset}}/report.log",
-    benchmark:
-        f"{LOGS}/benchmarks/{{dataset}}/report.tsv"
-    params:
-        cli=ALLOLAW,
-        opts=CLI_OPTS,
-    conda:
-        "../envs/allolaw.yaml"
-    shell:
-        "{params.cli} report {params.opts} --dataset {wildcards.dataset} > {log} 2>&1"
-
-
+# The page of each dataset is written by the compare job (compare.smk); this rule writes the
+# batch index from them.
 rule render_index:
     input:
         reports=[f"{REPORTS}/{d}.html" for d in DATASETS],
