@@ -136,6 +136,29 @@ def test_same_seed_gives_identical_draws_on_the_default_backend(
 
 
 @pytest.mark.mcmc
+def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
+    # fitting calls nutpie itself rather than through pm.sample (which first differentiates
+    # the model once per free variable to choose step methods). The reference is PyMC's own
+    # route, pm.sample(nuts_sampler="nutpie"), with the same seed and settings: same draws,
+    # same constant and observed data.
+    settings = {"draws": 60, "tune": 60, "chains": 2, "target_accept": 0.9}
+    fitting.lighter_jax_rewrites()
+    ours, _ = fitting._sample_nutpie(_tiny_model(), **settings, random_seed=21, cores=1,
+                                     progress=False)
+    reference = pm.sample(model=_tiny_model(), **settings, random_seed=21, progressbar=False,
+                          nuts_sampler="nutpie", compute_convergence_checks=False,
+                          nuts_sampler_kwargs={"cores": 1, "low_rank_modified_mass_matrix": True,
+                                               **fitting._NUTPIE_COMPILE})
+    for name in ("intercept", "exponent", "sigma", "taxon_intercept__family"):
+        np.testing.assert_array_equal(ours.posterior[name].values,
+                                      reference.posterior[name].values)
+    np.testing.assert_array_equal(ours.sample_stats["diverging"].values,
+                                  reference.sample_stats["diverging"].values)
+    for group in ("constant_data", "observed_data"):
+        assert getattr(ours, group).equals(getattr(reference, group))
+
+
+@pytest.mark.mcmc
 def test_default_backend_recovers_the_conjugate_normal_posterior() -> None:
     idata = fit_model(_conjugate_model(), seed=5, chains=2, draws=300, tune=300,
                       prior_draws=20)

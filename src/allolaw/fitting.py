@@ -423,14 +423,15 @@ def _sample(
         kwargs["nuts_sampler"] = "numpyro"
         kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential"}
     elif backend == "nutpie":
-        kwargs["nuts_sampler"] = "nutpie"
-        kwargs["nuts_sampler_kwargs"] = {
-            "cores": max(1, threads),
-            "low_rank_modified_mass_matrix": True,
-            **_NUTPIE_COMPILE,
-        }
         if _NUTPIE_COMPILE.get("backend") == "jax":
             _apply_jax_cache()
+        log.info("fit: %s sampling started", backend)
+        start = time.perf_counter()
+        idata, sampling = _sample_nutpie(model, **{k: kwargs[k] for k in (
+            "draws", "tune", "chains", "target_accept", "random_seed")},
+            cores=max(1, threads), progress=progress)
+        total = time.perf_counter() - start
+        return idata, total - sampling, sampling
     log.info("fit: %s sampling started", backend)
     start = time.perf_counter()
     idata = pm.sample(**kwargs)
@@ -438,6 +439,54 @@ def _sample(
     sampling = float(idata.posterior.attrs.get("sampling_time", total))
     sampling = min(sampling, total)
     return idata, total - sampling, sampling
+
+
+def _sample_nutpie(
+    model: Any,
+    *,
+    draws: int,
+    tune: int,
+    chains: int,
+    target_accept: float,
+    random_seed: int,
+    cores: int,
+    progress: bool,
+) -> tuple[az.InferenceData, float]:
+    # What pm.sample(nuts_sampler="nutpie") does (pymc 5.28, sampling/mcmc.py:
+    # _sample_external_nuts), called directly. pm.sample first assigns step methods, which
+    # differentiates the whole log density once per free variable only to learn that NUTS
+    # applies (assign_step_methods): on island taxa_errors_curved_by_taxon 31 s of the 105 s
+    # pm.sample took (profiled), thrown away, as nutpie differentiates the graph itself.
+    # Same compile options, seed, sampler settings and groups as PyMC's route, so the same
+    # draws (tests/test_fitting.py checks that against pm.sample). Returns (idata, seconds
+    # of nutpie.sample, which include the first evaluation's XLA compile, as PyMC counts it).
+    import arviz as az
+    import nutpie
+    import pymc as pm
+    from pymc.backends.arviz import (
+        coords_and_dims_for_inferencedata,
+        find_constants,
+        find_observations,
+    )
+
+    compiled = nutpie.compile_pymc_model(model, **_NUTPIE_COMPILE)
+    start = time.time()
+    idata = nutpie.sample(
+        compiled, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
+        seed=int(random_seed), progress_bar=progress, cores=cores,
+        low_rank_modified_mass_matrix=True,
+    )
+    sampling = time.time() - start
+    coords, dims = coords_and_dims_for_inferencedata(model)
+    groups = {
+        name: az.dict_to_dataset(found(model), library=pm, coords=coords, dims=dims,
+                                 default_dims=[])
+        for name, found in (("constant_data", find_constants),
+                            ("observed_data", find_observations))
+    }
+    idata.add_groups(groups, coords=coords, dims=dims)
+    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": tune})
+    return idata, sampling
 
 
 def _apply_jax_cache() -> None:
