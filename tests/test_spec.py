@@ -117,3 +117,13 @@ def test_description_names_the_terms_of_the_model():
     robust = describe_spec(load_spec(MODELS, "pooled_robust"))
     assert "Student-t" in robust
     assert "share one law" in robust
+
+
+def test_cost_rank_grows_with_each_block_of_parameters():
+    # The workflow starts fits in descending cost rank (longest job first); each added block
+    # of parameters must raise the rank. The shipped specs, simplest to richest.
+    chain = ["pooled", "taxa", "taxa_errors", "taxa_errors_curved", "taxa_errors_curved_by_taxon"]
+    ranks = [load_spec(MODELS, name).cost_rank for name in chain]
+    assert ranks == sorted(set(ranks))
+    assert load_spec(MODELS, "taxa_robust").cost_rank > load_spec(MODELS, "taxa").cost_rank
+    assert load_spec(MODELS, "breakpoint").cost_rank > load_spec(MODELS, "pooled").cost_rank

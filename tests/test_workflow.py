@@ -23,6 +23,7 @@ import yaml
 
 import workflow_runs as wr
 from allolaw.io import write_text
+from allolaw.spec import load_spec
 
 PROFILES = wr.REPO / "config" / "profiles"
 
@@ -76,6 +77,10 @@ def test_local_profile_reaches_every_job_of_the_batch(tmp_path: Path) -> None:
         assert job["threads"] == min(2, profile["set-threads"]["fit_model"])
         assert job["resources"]["mem_mb"] == str(fit["mem_mb"])
         assert job["resources"]["runtime"] == str(fit["runtime"])
+        # the costliest fits start first: each fit's priority is its spec's cost rank
+        spec = load_spec(work / "models", job["wildcards"]["model"])
+        assert job["priority"] == spec.cost_rank
+    assert len({job["priority"] for job in fits}) > 1
 
 
 # ------------------------------------------------------------------ atomic writes (fast)

@@ -146,12 +146,18 @@ def list_rules(work: Path) -> list[str]:
 
 
 def planned_jobs(dry_run_output: str) -> list[dict]:
-    """Jobs of a ``snakemake -n`` printout: rule, threads and resources of each."""
+    """Jobs of a ``snakemake -n`` printout: rule, wildcards, priority, threads, resources."""
     jobs: list[dict] = []
     for line in dry_run_output.splitlines():
         head = re.match(r"^(?:local)?rule (\w+):$", line.strip())
         if head:
-            jobs.append({"rule": head.group(1), "threads": 1, "resources": {}})
+            jobs.append({"rule": head.group(1), "threads": 1, "priority": 0, "wildcards": {},
+                         "resources": {}})
+        elif jobs and line.strip().startswith("wildcards:"):
+            items = line.split(":", 1)[1].split(",")
+            jobs[-1]["wildcards"] = dict(item.strip().split("=", 1) for item in items)
+        elif jobs and line.strip().startswith("priority:"):
+            jobs[-1]["priority"] = int(line.split(":", 1)[1])
         elif jobs and line.strip().startswith("threads:"):
             jobs[-1]["threads"] = int(line.split(":", 1)[1])
         elif jobs and line.strip().startswith("resources:"):

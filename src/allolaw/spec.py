@@ -69,6 +69,28 @@ class ModelSpec:
         """True when the true log size of each species is a latent parameter."""
         return self.size_error != "none"
 
+    @property
+    def cost_rank(self) -> int:
+        """A rough rank of how long a fit of this spec takes, from the spec alone.
+
+        The workflow starts the fits with the highest rank first (Snakemake ``priority``), so
+        the longest fits do not start last and run alone on one core while the other idles
+        (longest job first: Graham 1969, SIAM J. Appl. Math. 17:416-429). One point for the
+        law, one per taxon term that varies, two for a latent true size per species (the
+        largest block of parameters), one each for curvature, curvature by taxon, a
+        breakpoint and Student-t residuals. Demo batch of 2026-12-03, job seconds in spec
+        order: island 12, 57, 70, 86, 113 for ranks 1, 3, 5, 6, 7; tree 8, 37, 33, 49 for
+        1, 5, 6, 7; cell 11, 27, 40 for 1, 3, 3 (benchmarks/README.md).
+        """
+        rank = 1
+        if self.taxa.get("levels") != "none":
+            rank += len(self.taxa.get("vary", []))
+        rank += 2 if self.has_size_error else 0
+        rank += {"none": 0, "shared": 1}.get(self.curvature, 2)
+        rank += 1 if self.breakpoint != "none" else 0
+        rank += 1 if self.residuals == "student_t" else 0
+        return rank
+
 
 def load_spec(models_dir: str | Path, name: str) -> ModelSpec:
     """Read, validate and complete ``<models_dir>/<name>.yaml``.

@@ -4,6 +4,7 @@ import shlex
 import sys
 
 from allolaw.config import validate_config
+from allolaw.spec import load_spec
 
 # The package fills defaults from the same schema Snakemake validated against.
 CONFIG = validate_config(dict(config), source="snakemake config")
@@ -35,6 +36,11 @@ def dataset_sources(wildcards):
 
 def model_spec(wildcards):
     return f"{CONFIG['models_dir']}/{wildcards.model}.yaml"
+
+
+def fit_priority(wildcards):
+    # the costliest fits start first (ModelSpec.cost_rank), so none starts last and runs alone
+    return load_spec(CONFIG["models_dir"], wildcards.model).cost_rank
 
 
 def dataset_posteriors(wildcards):

@@ -15,6 +15,7 @@ rule fit_model:
     benchmark:
         f"{LOGS}/benchmarks/{{dataset}}/fit_{{model}}.tsv"
     threads: 1
+    priority: fit_priority
     resources:
         mem_mb=4000,
         runtime=60,
