@@ -81,6 +81,9 @@ def test_local_profile_reaches_every_job_of_the_batch(tmp_path: Path) -> None:
         spec = load_spec(work / "models", job["wildcards"]["model"])
         assert job["priority"] == spec.cost_rank
     assert len({job["priority"] for job in fits}) > 1
+    # every prepare job (seconds long, unlocks a dataset's fits) before any fit
+    prepares = [job for job in jobs if job["rule"] == "prepare_dataset"]
+    assert min(job["priority"] for job in prepares) > max(job["priority"] for job in fits)
 
 
 # ------------------------------------------------------------------ atomic writes (fast)

@@ -1,6 +1,9 @@
+# Before any fit (fits carry priority = their spec's cost rank, at most ~10): a prepare job
+# takes seconds and unlocks all fits of its dataset, so the longest-first order sees them all.
 rule prepare_dataset:
     input:
         sources=dataset_sources,
+    priority: 100
     output:
         clean=f"{RESULTS}/{{dataset}}/clean.csv",
         ledger=f"{RESULTS}/{{dataset}}/ledger.csv",
