@@ -143,7 +143,7 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
     # same constant and observed data.
     settings = {"draws": 60, "tune": 60, "chains": 2, "target_accept": 0.9}
     fitting.lighter_jax_rewrites()
-    ours, _ = fitting._sample_nutpie(_tiny_model(), **settings, random_seed=21, cores=1,
+    ours, _ = fitting._sample_nutpie(_tiny_model(), **settings, seed=21, cores=1,
                                      progress=False)
     reference = pm.sample(model=_tiny_model(), **settings, random_seed=21, progressbar=False,
                           nuts_sampler="nutpie", compute_convergence_checks=False,

@@ -427,9 +427,9 @@ def _sample(
             _apply_jax_cache()
         log.info("fit: %s sampling started", backend)
         start = time.perf_counter()
-        idata, sampling = _sample_nutpie(model, **{k: kwargs[k] for k in (
-            "draws", "tune", "chains", "target_accept", "random_seed")},
-            cores=max(1, threads), progress=progress)
+        idata, sampling = _sample_nutpie(
+            model, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
+            seed=seed, cores=max(1, threads), progress=progress)
         total = time.perf_counter() - start
         return idata, total - sampling, sampling
     log.info("fit: %s sampling started", backend)
@@ -448,7 +448,7 @@ def _sample_nutpie(
     tune: int,
     chains: int,
     target_accept: float,
-    random_seed: int,
+    seed: int,
     cores: int,
     progress: bool,
 ) -> tuple[az.InferenceData, float]:
@@ -473,7 +473,7 @@ def _sample_nutpie(
     start = time.time()
     idata = nutpie.sample(
         compiled, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
-        seed=int(random_seed), progress_bar=progress, cores=cores,
+        seed=int(seed), progress_bar=progress, cores=cores,
         low_rank_modified_mass_matrix=True,
     )
     sampling = time.time() - start

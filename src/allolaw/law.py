@@ -31,7 +31,8 @@ def expected_log_trait(
     Parameters
     ----------
     idata
-        InferenceData of a fit of :func:`build_model` (``posterior`` and ``constant_data``).
+        InferenceData of a fit of :func:`allolaw.modeling.build_model` (``posterior`` and
+        ``constant_data``).
     log_size
         Natural logs of size (canonical unit), the grid.
     level, taxon

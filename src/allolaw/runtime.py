@@ -99,7 +99,8 @@ def import_arviz_without_numba() -> None:
     ArviZ 0.23 uses Numba whenever it is installed (PyTensor installs it): it compiles a Numba
     ufunc while being imported (``arviz.stats.ecdf_utils``, for ECDF bands, which we never
     draw) and jit-compiles its variance helper on first use, about 1 s per process in all
-    (``import arviz``: 2.6 s with Numba, 1.9 s without; benchmarks/README.md). No ArviZ
+    (a process that imports ArviZ and exits: 3.5 s with Numba, 2.6 s without;
+    benchmarks/startup_cost.py). No ArviZ
     setting avoids the import-time compile, so Numba is hidden from ``sys.modules`` for the
     length of the import only; afterwards it imports as usual (PyTensor's Numba backend still
     works). Does nothing if ArviZ or Numba is already imported. Called by the CLI stages that
