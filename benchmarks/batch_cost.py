@@ -95,16 +95,19 @@ def main() -> None:
 
 def _check_seconds(log: Path) -> float:
     # the check stage's own line in a fit job's log (diagnostics.check_dataset_model)
-    found = re.findall(r"check done in ([0-9.]+) s", log.read_text(errors="replace"))
-    return float(found[-1]) if found else 0.0
+    return _logged_seconds(log, r"check done in ([0-9.]+) s")
 
 
 def _report_seconds(log: Path) -> float:
     # the report's own line in a compare job's log (report.render_dataset_report)
+    return _logged_seconds(log, r"report \S+: wrote .* \([0-9.]+ kB, ([0-9.]+) s\)")
+
+
+def _logged_seconds(log: Path, pattern: str) -> float:
+    # the seconds in the last line of ``log`` matching ``pattern``; 0 without log or line
     if not log.is_file():
         return 0.0
-    found = re.findall(r"report \S+: wrote .* \([0-9.]+ kB, ([0-9.]+) s\)",
-                       log.read_text(errors="replace"))
+    found = re.findall(pattern, log.read_text(errors="replace"))
     return float(found[-1]) if found else 0.0
 
 

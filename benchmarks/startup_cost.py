@@ -45,7 +45,7 @@ def main() -> None:
 
     rows = []
     for label, code in _IMPORT.items():
-        rows.append((label, _times([sys.executable, "-c", code], args.repeat)))
+        rows.append((label, _times([[sys.executable, "-c", code]], args.repeat)))
     if args.workdir and args.dataset:
         cli = [sys.executable, "-m", "allolaw"]
         opts = ["--config", args.config, "--dataset", args.dataset]
@@ -62,9 +62,8 @@ def main() -> None:
               f"({min(times):.2f} - {max(times):.2f})")
 
 
-def _times(commands: list, repeat: int, *, cwd: str | None = None) -> list[float]:
-    if commands and isinstance(commands[0], str):
-        commands = [commands]
+def _times(commands: list[list[str]], repeat: int, *, cwd: str | None = None) -> list[float]:
+    # wall seconds of running ``commands`` one after another, ``repeat`` times
     out = []
     for _ in range(repeat):
         start = time.perf_counter()

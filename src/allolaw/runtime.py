@@ -100,11 +100,11 @@ def import_arviz_without_numba() -> None:
     ufunc while being imported (``arviz.stats.ecdf_utils``, for ECDF bands, which we never
     draw) and jit-compiles its variance helper on first use, about 1 s per process in all
     (a process that imports ArviZ and exits: 3.5 s with Numba, 2.6 s without;
-    benchmarks/startup_cost.py). No ArviZ
-    setting avoids the import-time compile, so Numba is hidden from ``sys.modules`` for the
-    length of the import only; afterwards it imports as usual (PyTensor's Numba backend still
-    works). Does nothing if ArviZ or Numba is already imported. Called by the CLI stages that
-    read fits, before anything imports PyMC (which imports ArviZ).
+    benchmarks/startup_cost.py). No ArviZ setting avoids the import-time compile, so Numba
+    is hidden from ``sys.modules`` for the length of the import only; afterwards it imports
+    as usual (PyTensor's Numba backend still works). Does nothing if ArviZ or Numba is
+    already imported. Called by the CLI stages that read fits, before anything imports PyMC
+    (which imports ArviZ).
     """
     if "arviz" in sys.modules or "numba" in sys.modules:
         return
