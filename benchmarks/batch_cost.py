@@ -38,8 +38,8 @@ def main() -> None:
 
     import pandas as pd
 
-    from allolaw.diagnostics import read_posterior
-    from allolaw.report import read_benchmarks
+    from allolaw.checks.reading import read_posterior
+    from allolaw.report.benchmarks import read_benchmarks
 
     jobs = read_benchmarks(work / "logs")
     if jobs.empty:

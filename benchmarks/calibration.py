@@ -21,7 +21,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from allolaw.spec import parse_spec
+from allolaw.model.spec import parse_spec
 from allolaw.testing import simulate_law
 from allolaw.testing.calibration import calibration_records, summarise_calibration
 

@@ -33,11 +33,11 @@ def main() -> None:
     import os
 
     os.chdir(REPO)
+    from allolaw.answers.hypotheses import compare_hypotheses
     from allolaw.config import hypotheses_config, load_config
-    from allolaw.fitting import fit_dataset_model
-    from allolaw.hypotheses import compare_hypotheses
     from allolaw.intake import prepare_dataset
-    from allolaw.spec import load_spec
+    from allolaw.model.fitting import fit_dataset_model
+    from allolaw.model.spec import load_spec
 
     with tempfile.TemporaryDirectory() as tmp:
         config = load_config(REPO / "config" / "config.yaml", [

@@ -33,7 +33,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as out:
         config["reports_dir"] = out
         t0 = time.perf_counter()
-        from allolaw.report import render_dataset_report, render_index
+        from allolaw.report.rendering import render_dataset_report, render_index
 
         print(f"import allolaw.report: {time.perf_counter() - t0:.2f} s")
         print(f"{'dataset':<22}{'first s':>9}{'best s':>9}{'kB':>9}{'figures':>9}")

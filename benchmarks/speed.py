@@ -15,7 +15,7 @@ D  300 families nested in 30 orders, errors in both axes, n = 10,000
 Each fit runs in its own subprocess (clean peak memory, honest import and compile cost). The
 baseline is what a user would write by hand: one non-centred hierarchical PyMC model with a
 latent true size per species, sampled with ``pm.sample()`` defaults. allolaw's fit is
-``modeling.build_model`` + ``fitting.fit_model`` with the batch defaults (4 chains,
+``model.builder.build_model`` + ``model.sampling.fit_model`` with the batch defaults (4 chains,
 1000 + 1000, target_accept 0.9, ``backend=auto`` unless ``--backends`` says otherwise).
 
 Columns: wall, compile and sampling seconds; min bulk and tail ESS over every element of every
@@ -197,9 +197,9 @@ def _work(job: dict[str, Any]) -> dict[str, Any]:
         backend_used = "pymc"
         cores = min(4, os.cpu_count() or 1)
     else:
-        from allolaw.fitting import fit_model
-        from allolaw.modeling import build_model
-        from allolaw.spec import parse_spec
+        from allolaw.model.builder import build_model
+        from allolaw.model.sampling import fit_model
+        from allolaw.model.spec import parse_spec
 
         spec = parse_spec(spec_raw, name=f"bench_{job['problem']}")
         model = build_model(data, spec, levels=levels, log_reference_size=log_ref)

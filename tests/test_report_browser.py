@@ -25,8 +25,8 @@ from pathlib import Path
 
 import pytest
 
-from allolaw import report
-from test_report import CURVED, HOSTILE_IMAGE, HOSTILE_SPECIES, build_results
+from allolaw.report import rendering
+from report_results import CURVED, HOSTILE_IMAGE, HOSTILE_SPECIES, build_results
 
 CHROMIUM = Path("/usr/bin/chromium")
 SCREENSHOTS = Path(__file__).resolve().parents[1] / "reports" / "screenshots"
@@ -39,8 +39,8 @@ pytestmark = pytest.mark.skipif(
 
 def test_reports_load_offline_without_errors_requests_or_script(tmp_path):
     config = build_results(tmp_path)
-    page = report.render_dataset_report(config, "demo")
-    index = report.render_index(config, logs_dir=tmp_path / "logs")
+    page = rendering.render_dataset_report(config, "demo")
+    index = rendering.render_index(config, logs_dir=tmp_path / "logs")
     SCREENSHOTS.mkdir(parents=True, exist_ok=True)
     with _Browser(tmp_path / "profile") as browser:
         result = browser.visit(page.as_uri(), SCREENSHOTS / "demo.png")
@@ -94,7 +94,6 @@ _PROBE = """(() => ({
   xss: typeof window.__allolaw_xss !== 'undefined',
   height: document.documentElement.scrollHeight,
 }))()"""
-
 
 class _Browser:
     """One headless Chromium with a fresh profile, driven over the DevTools protocol."""

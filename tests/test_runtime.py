@@ -42,7 +42,6 @@ print(json.dumps({
 }))
 """
 
-
 def _probe(tmp_path: Path, threads: int) -> dict:
     env = {k: v for k, v in os.environ.items()
            if not k.startswith(("OMP_", "MKL_", "OPENBLAS_", "NUMBA_", "PYTENSOR_", "JAX_",

@@ -23,7 +23,7 @@ import yaml
 
 import workflow_runs as wr
 from allolaw.io import write_text
-from allolaw.spec import load_spec
+from allolaw.model.spec import load_spec
 
 PROFILES = wr.REPO / "config" / "profiles"
 
@@ -102,7 +102,7 @@ def test_fit_stage_killed_while_writing_leaves_no_posterior(tmp_path: Path) -> N
         import sys, time
         import arviz as az
         import numpy as np
-        import allolaw.fitting as fitting
+        import allolaw.model.fitting as fitting
         from allolaw.config import load_config
 
         def fake_fit(model, **kwargs):

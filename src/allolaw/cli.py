@@ -23,7 +23,7 @@ from collections.abc import Sequence
 from allolaw import __version__
 from allolaw.errors import UserError
 
-__all__ = ["main", "run"]
+__all__ = ["configure_logging", "main", "run"]
 
 log = logging.getLogger("allolaw")
 
@@ -32,12 +32,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit status."""
     parser = _build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(
-        level=logging.DEBUG if args.debug else logging.INFO,
-        format="%(asctime)s allolaw %(levelname)s %(message)s",
-        datefmt="%H:%M:%S",
-        stream=sys.stderr,
-    )
+    configure_logging(debug=args.debug)
     start = time.perf_counter()
     try:
         args.func(args)
@@ -48,6 +43,37 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     log.info("%s done in %.1f s", args.command, time.perf_counter() - start)
     return 0
+
+
+def configure_logging(*, debug: bool = False) -> None:
+    """Log to stderr: our own records from INFO up, libraries' only from WARNING up.
+
+    A fit log carries what a user acts on. Libraries announce things at INFO that need no
+    action (ArviZ's three "arviz_* not installed" lines on import, PyMC's "Sampling: [...]"):
+    their INFO records are demoted to DEBUG, so they show only with ``--debug``. Warnings
+    and errors of every library are kept. Does nothing when logging is already configured
+    (as :func:`logging.basicConfig`).
+    """
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(asctime)s allolaw %(levelname)s %(message)s",
+                                           datefmt="%H:%M:%S"))
+    handler.addFilter(_LibraryChatter(show=debug))
+    logging.basicConfig(level=logging.DEBUG if debug else logging.INFO, handlers=[handler])
+
+
+class _LibraryChatter(logging.Filter):
+    # demotes INFO records of loggers outside allolaw to DEBUG; drops them unless shown
+    def __init__(self, *, show: bool) -> None:
+        super().__init__()
+        self.show = show
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if record.name == "allolaw" or record.name.startswith("allolaw."):
+            return True
+        if record.levelno <= logging.INFO:
+            record.levelno, record.levelname = logging.DEBUG, "DEBUG"
+            return self.show
+        return True
 
 
 def run() -> None:
@@ -158,11 +184,11 @@ def _run_fit(args: argparse.Namespace) -> None:
     config = _config(args)
     configure_job(args.threads)
     import_arviz_without_numba()
-    from allolaw.fitting import fit_dataset_model
+    from allolaw.model.fitting import fit_dataset_model
 
     fit_dataset_model(config, args.dataset, args.model, threads=args.threads)
     if args.check:
-        from allolaw.diagnostics import check_dataset_model
+        from allolaw.checks.dataset import check_dataset_model
 
         result = check_dataset_model(config, args.dataset, args.model, threads=args.threads)
         print(f"{args.dataset}/{args.model}: {result}")
@@ -174,7 +200,7 @@ def _run_check(args: argparse.Namespace) -> None:
     config = _config(args)
     configure_job(args.threads)
     import_arviz_without_numba()
-    from allolaw.diagnostics import check_dataset_model
+    from allolaw.checks.dataset import check_dataset_model
 
     result = check_dataset_model(config, args.dataset, args.model, threads=args.threads)
     print(f"{args.dataset}/{args.model}: {result}")
@@ -186,11 +212,11 @@ def _run_compare(args: argparse.Namespace) -> None:
     config = _config(args)
     configure_job(1)
     import_arviz_without_numba()
-    from allolaw.comparison import compare_dataset
+    from allolaw.answers.dataset import compare_dataset
 
     compare_dataset(config, args.dataset)
     if args.report:
-        from allolaw.report import render_dataset_report
+        from allolaw.report.rendering import render_dataset_report
 
         print(render_dataset_report(config, args.dataset))
 
@@ -200,7 +226,7 @@ def _run_report(args: argparse.Namespace) -> None:
 
     config = _config(args)
     import_arviz_without_numba()
-    from allolaw.report import render_dataset_report, render_index
+    from allolaw.report.rendering import render_dataset_report, render_index
 
     path = render_index(config) if args.index else render_dataset_report(config, args.dataset)
     print(path)

@@ -13,7 +13,6 @@ __all__ = ["UserError", "format_location"]
 class UserError(Exception):
     """A problem in the user's input: a file, a config key, a model spec."""
 
-
 def format_location(
     file: str | None = None,
     line: int | None = None,

@@ -14,13 +14,13 @@ from pathlib import Path
 __all__ = ["LIGHTER_REWRITES", "cache_root", "configure_job", "import_arviz_without_numba"]
 
 #: PyTensor graph rewrites left out of compilation. The gradient of the whitened taxon tree
-#: (modeling._taxon_terms) is a graph of ~6,400 small operations; ``local_greedy_distributor``
+#: (model.terms.taxon_terms) is a graph of ~6,400 small operations; ``local_greedy_distributor``
 #: (which factors a*b + a*c into a*(b + c)) took about half of its rewriting time: on island
 #: taxa_errors_curved_by_taxon the JAX compile of the log density and gradient fell from
 #: 20.7 s to 10.5 s without it, the rewritten graph is the same size (392 vs 391 nodes) and
 #: the fit's sampling time did not change (65.1 vs 67.7 s). It only simplifies algebra; the
 #: stability rewrites all stay. :func:`configure_job` passes it to PyTensor's default mode
-#: (``optimizer_excluding``), :func:`allolaw.fitting.lighter_jax_rewrites` to its JAX mode.
+#: (``optimizer_excluding``), :func:`allolaw.model.compiling.lighter_jax_rewrites` to its JAX mode.
 LIGHTER_REWRITES = ("local_greedy_distributor",)
 
 _THREAD_VARS = (

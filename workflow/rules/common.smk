@@ -4,7 +4,7 @@ import shlex
 import sys
 
 from allolaw.config import validate_config
-from allolaw.spec import load_spec
+from allolaw.model.spec import load_spec
 
 # The package fills defaults from the same schema Snakemake validated against.
 CONFIG = validate_config(dict(config), source="snakemake config")

@@ -18,8 +18,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from allolaw.modeling import SIZE_MEASUREMENT, TRAIT, build_model
-from allolaw.spec import ModelSpec
+from allolaw.model.builder import TRAIT, build_model
+from allolaw.model.spec import ModelSpec
+from allolaw.model.terms import SIZE_MEASUREMENT
 
 __all__ = [
     "CalibrationResult",

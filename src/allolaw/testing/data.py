@@ -181,7 +181,7 @@ def quick_sample(
 ) -> Any:
     """A small seeded NUTS run (numpyro, chains in sequence, posterior only) for tests.
 
-    The pipeline samples with :func:`allolaw.fitting.fit_model`, which also adds the
+    The pipeline samples with :func:`allolaw.model.sampling.fit_model`, which also adds the
     log-likelihood and predictive groups; tests of the model itself need the posterior only.
     """
     import pymc as pm

@@ -5,7 +5,8 @@ import math
 import numpy as np
 import pytest
 
-from allolaw.hypotheses import COLUMNS, compare_hypotheses, fit_parametric
+from allolaw.answers.density import fit_parametric
+from allolaw.answers.hypotheses import COLUMNS, compare_hypotheses
 from allolaw.testing.posteriors import (
     conjugate_hierarchy_posterior,
     conjugate_line_posterior,
@@ -183,8 +184,8 @@ def test_savage_dickey_matches_smc_evidence_ratios_of_a_pooled_model():
     import pandas as pd
     import pymc as pm
 
-    from allolaw.modeling import build_model
-    from allolaw.spec import load_spec
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import load_spec
 
     spec = load_spec("models", "pooled")
     rng = np.random.default_rng(3)
@@ -246,9 +247,9 @@ def test_demo_datasets_give_the_true_exponent_the_highest_probability(tmp_path, 
     from pathlib import Path
 
     from allolaw.config import hypotheses_config, load_config
-    from allolaw.fitting import fit_dataset_model
     from allolaw.intake import prepare_dataset
-    from allolaw.spec import load_spec
+    from allolaw.model.fitting import fit_dataset_model
+    from allolaw.model.spec import load_spec
 
     repo = Path(__file__).resolve().parents[1]
     os.chdir(repo)

@@ -1,8 +1,7 @@
 """The law a fit describes, evaluated from its draws: NumPy only.
 
-Kept apart from :mod:`allolaw.modeling` (which imports PyMC) so that the stages that only read
-fits (compare, report) do not pay PyMC's import; :mod:`allolaw.modeling` re-exports
-:func:`expected_log_trait`.
+Kept apart from :mod:`allolaw.model.builder` (which imports PyMC) so that the stages that only
+read fits (compare, report) do not pay PyMC's import.
 """
 
 from __future__ import annotations
@@ -31,7 +30,7 @@ def expected_log_trait(
     Parameters
     ----------
     idata
-        InferenceData of a fit of :func:`allolaw.modeling.build_model` (``posterior`` and
+        InferenceData of a fit of :func:`allolaw.model.builder.build_model` (``posterior`` and
         ``constant_data``).
     log_size
         Natural logs of size (canonical unit), the grid.

@@ -1,23 +1,19 @@
-"""Tests for allolaw.fitting: groups, log-likelihood, seeding, fallback, the fit stage's file."""
+"""Sampling (allolaw.model.sampling): groups, log-likelihood, seeding, backends and fallback."""
 
 from __future__ import annotations
 
-import json
-import subprocess
-import sys
 import warnings
 from pathlib import Path
 
 import arviz as az
 import numpy as np
-import pandas as pd
 import pymc as pm
 import pytest
 from scipy import stats
 
-from allolaw import fitting
 from allolaw.errors import UserError
-from allolaw.fitting import derive_seed, fit_dataset_model, fit_model, resolve_backend
+from allolaw.model import compiling, sampling
+from allolaw.model.sampling import fit_model, resolve_backend
 from allolaw.runtime import LIGHTER_REWRITES
 
 REPO = Path(__file__).resolve().parents[1]
@@ -35,7 +31,7 @@ def _line_data(n: int = 25, seed: int = 7) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _tiny_model() -> pm.Model:
-    # Same variable names as modeling.build_model: intercept, exponent, sigma, observed `trait`
+    # Same variable names as model.builder.build_model: intercept, exponent, sigma, observed `trait`
     # over `species`, a constant `log_size_obs`, and one taxon level with its own deviations.
     x, y = _line_data()
     n = len(x)
@@ -142,13 +138,13 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
     # route, pm.sample(nuts_sampler="nutpie"), with the same seed and settings: same draws,
     # same constant and observed data.
     settings = {"draws": 60, "tune": 60, "chains": 2, "target_accept": 0.9}
-    fitting.lighter_jax_rewrites()
-    ours, _ = fitting._sample_nutpie(_tiny_model(), **settings, seed=21, cores=1,
+    compiling.lighter_jax_rewrites()
+    ours, _ = sampling._sample_nutpie(_tiny_model(), **settings, seed=21, cores=1,
                                      progress=False)
     reference = pm.sample(model=_tiny_model(), **settings, random_seed=21, progressbar=False,
                           nuts_sampler="nutpie", compute_convergence_checks=False,
                           nuts_sampler_kwargs={"cores": 1, "low_rank_modified_mass_matrix": True,
-                                               **fitting._NUTPIE_COMPILE})
+                                               **compiling.NUTPIE_COMPILE})
     for name in ("intercept", "exponent", "sigma", "taxon_intercept__family"):
         np.testing.assert_array_equal(ours.posterior[name].values,
                                       reference.posterior[name].values)
@@ -182,7 +178,7 @@ def test_default_backend_recovers_the_conjugate_normal_posterior() -> None:
 def test_failing_backend_falls_back_to_pymc_and_records_why(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
-    original = fitting._sample
+    original = sampling._sample
 
     def broken(model, backend, **kwargs):
         if backend != "pymc":
@@ -190,7 +186,7 @@ def test_failing_backend_falls_back_to_pymc_and_records_why(
             raise RuntimeError(msg)
         return original(model, backend, **kwargs)
 
-    monkeypatch.setattr(fitting, "_sample", broken)
+    monkeypatch.setattr(sampling, "_sample", broken)
     idata = fit_model(_tiny_model(), seed=3, backend="nutpie", **SMALL)
     assert idata.attrs["backend"] == "pymc"
     assert idata.attrs["backend_requested"] == "nutpie"
@@ -203,7 +199,7 @@ def test_pymc_backend_failure_is_not_hidden(monkeypatch: pytest.MonkeyPatch) -> 
         msg = f"{backend} broke"
         raise RuntimeError(msg)
 
-    monkeypatch.setattr(fitting, "_sample", broken)
+    monkeypatch.setattr(sampling, "_sample", broken)
     with pytest.raises(RuntimeError, match="pymc broke"):
         fit_model(_tiny_model(), seed=3, backend="pymc", **SMALL)
 
@@ -221,18 +217,18 @@ def test_model_without_observed_trait_is_refused() -> None:
 
 
 def test_lighter_jax_rewrites_leave_the_log_density_and_gradient_unchanged() -> None:
-    # fitting.lighter_jax_rewrites drops one algebraic rewrite from the JAX compile mode (for
+    # compiling.lighter_jax_rewrites drops one algebraic rewrite from the JAX compile mode (for
     # compile time); the compiled log density and gradient of a whitened two-level model with
     # curvature must equal PyTensor's own evaluation of the same graph with no rewrite at all
     # (Python implementation of each operation), to rounding error.
     import pytensor
     from pytensor.compile import mode as pt_mode
 
-    from allolaw.modeling import build_model
-    from allolaw.spec import load_spec
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import load_spec
     from allolaw.testing import simulate_curvature
 
-    fitting.lighter_jax_rewrites()
+    compiling.lighter_jax_rewrites()
     assert set(LIGHTER_REWRITES) <= set(pt_mode.predefined_modes["JAX"]
                                                 .provided_optimizer.exclude)
     assert pt_mode.JAX is pt_mode.predefined_modes["JAX"]
@@ -254,143 +250,3 @@ def test_lighter_jax_rewrites_leave_the_log_density_and_gradient_unchanged() -> 
     plain = pytensor.function(model.value_vars, outputs, mode=unrewritten)(*values)
     for a, b in zip(fast, plain, strict=True):
         np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-9, atol=1e-9)
-
-
-def test_derived_seed_is_stable_across_processes_and_separates_models() -> None:
-    code = ("from allolaw.fitting import derive_seed; "
-            "print(derive_seed(20261202, 'island_metabolism', 'taxa'))")
-    outs = set()
-    for hash_seed in ("0", "1"):
-        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                             check=True, env={"PYTHONHASHSEED": hash_seed, "PATH": ""})
-        outs.add(int(out.stdout.strip()))
-    assert outs == {derive_seed(20261202, "island_metabolism", "taxa")}
-    seeds = {derive_seed(20261202, d, m) for d in ("a", "b") for m in ("taxa", "pooled")}
-    assert len(seeds) == 4
-    assert all(0 <= s < 2**32 for s in seeds)
-
-
-# --- the fit stage -------------------------------------------------------------------------
-
-def _write_prepared(results: Path, dataset: str) -> None:
-    # A clean.csv per the DEVELOPERS.md contract (invented values with known truth).
-    x, y = _line_data(n=20, seed=2)
-    n = len(x)
-    table = pd.DataFrame({
-        "species": [f"Species {i}" for i in range(n)],
-        "family": [f"F{i % 3}" for i in range(n)],
-        "log_size": x + np.log(50.0),
-        "log_trait": y,
-        "n_rows": 1,
-        "within_sd_log_size": np.nan,
-        "within_sd_log_trait": np.nan,
-        "sd_log_size": 0.05,
-        "sd_log_trait": 0.05,
-        "sd_source_size": "pooled",
-        "sd_source_trait": "pooled",
-        "source": "test",
-        "flag_outlier": False,
-        "flag_singleton_taxon": False,
-    })
-    folder = results / dataset
-    folder.mkdir(parents=True)
-    table.to_csv(folder / "clean.csv", index=False)
-    prepared = {"dataset": dataset, "reference_size": 50.0,
-                "log_reference_size": float(np.log(50.0)), "levels": ["family"]}
-    (folder / "prepared.json").write_text(json.dumps(prepared), encoding="utf-8")
-
-
-def _stage_config(tmp_path: Path) -> dict:
-    from allolaw.config import validate_config
-
-    raw = {
-        "results_dir": str(tmp_path / "results"),
-        "models_dir": str(REPO / "models"),
-        "sampler": {"chains": 2, "draws": 100, "tune": 100, "seed": 99, "prior_draws": 20},
-        "datasets": {"toy": {
-            "title": "toy",
-            "size": {"quantity": "mass", "unit": "g", "label": "mass"},
-            "trait": {"quantity": "power", "unit": "W", "label": "rate"},
-            "reference_size": 50,
-            "sources": [{"file": "toy.csv", "columns": {"species": "species", "size": "m",
-                                                         "trait": "r", "levels": ["family"]},
-                         "units": {"size": "g", "trait": "W"}}],
-            "models": ["pooled"],
-        }},
-    }
-    return validate_config(raw)
-
-
-@pytest.mark.mcmc
-def test_fit_dataset_model_writes_posterior_with_every_attribute(tmp_path: Path) -> None:
-    config = _stage_config(tmp_path)
-    results = Path(config["results_dir"])
-    _write_prepared(results, "toy")
-    idata = fit_dataset_model(config, "toy", "pooled")
-    path = results / "toy" / "pooled" / "posterior.nc"
-    assert path.is_file()
-    assert not list(path.parent.glob("*.partial"))
-    back = az.from_netcdf(path)
-    for key in ("allolaw_version", "dataset", "model", "spec", "sampler", "backend", "seed",
-                "data_sha256", "versions", "log_reference_size", "compile_seconds",
-                "sampling_seconds", "wall_seconds"):
-        assert key in back.attrs, key
-    assert back.attrs["dataset"] == "toy"
-    assert back.attrs["model"] == "pooled"
-    assert int(back.attrs["seed"]) == derive_seed(99, "toy", "pooled")
-    import hashlib
-    digest = hashlib.sha256((results / "toy" / "clean.csv").read_bytes()).hexdigest()
-    assert back.attrs["data_sha256"] == digest
-    assert json.loads(back.attrs["sampler"])["draws"] == 100
-    assert "pymc" in json.loads(back.attrs["versions"])
-    assert float(back.attrs["log_reference_size"]) == pytest.approx(np.log(50.0))
-    assert set(idata.groups()) <= set(back.groups())
-    np.testing.assert_array_equal(back.posterior["exponent"].values,
-                                  idata.posterior["exponent"].values)
-    assert list(back.log_likelihood.data_vars) == ["trait"]
-
-
-def test_failed_fit_leaves_no_posterior_file(tmp_path: Path,
-                                             monkeypatch: pytest.MonkeyPatch) -> None:
-    config = _stage_config(tmp_path)
-    results = Path(config["results_dir"])
-    _write_prepared(results, "toy")
-
-    def broken_fit(*args, **kwargs):
-        msg = "sampler exploded"
-        raise RuntimeError(msg)
-
-    monkeypatch.setattr(fitting, "fit_model", broken_fit)
-    with pytest.raises(RuntimeError, match="exploded"):
-        fit_dataset_model(config, "toy", "pooled")
-    assert not (results / "toy" / "pooled" / "posterior.nc").exists()
-
-
-def test_interrupted_write_leaves_no_partial_file(tmp_path: Path,
-                                                  monkeypatch: pytest.MonkeyPatch) -> None:
-    config = _stage_config(tmp_path)
-    results = Path(config["results_dir"])
-    _write_prepared(results, "toy")
-    small = az.from_dict(posterior={"exponent": np.zeros((1, 5))})
-
-    def fake_fit(model, **kwargs):
-        return small
-
-    def half_write(self, filename, **kwargs):
-        Path(filename).write_bytes(b"half a file")
-        msg = "disk full"
-        raise OSError(msg)
-
-    monkeypatch.setattr(fitting, "fit_model", fake_fit)
-    monkeypatch.setattr(az.InferenceData, "to_netcdf", half_write)
-    with pytest.raises(OSError, match="disk full"):
-        fit_dataset_model(config, "toy", "pooled")
-    folder = results / "toy" / "pooled"
-    assert not (folder / "posterior.nc").exists()
-    assert list(folder.iterdir()) == []
-
-
-def test_missing_prepared_table_is_a_user_error(tmp_path: Path) -> None:
-    config = _stage_config(tmp_path)
-    with pytest.raises(UserError, match="allolaw prepare"):
-        fit_dataset_model(config, "toy", "pooled")

@@ -2,9 +2,9 @@
 
 :func:`fit_model` runs NUTS on a built PyMC model and returns an InferenceData with the
 posterior, sampler statistics, the pointwise log-likelihood of the observed trait, posterior
-and prior predictive draws, and the observed and constant data. :func:`fit_dataset_model` is the
-``fit`` stage: it reads a prepared dataset and a model spec, fits, records how the fit was made
-and writes ``results/<dataset>/<model>/posterior.nc`` atomically.
+and prior predictive draws, and the observed and constant data. The ``fit`` stage around it is
+:func:`allolaw.model.fitting.fit_dataset_model`; compile modes are in
+:mod:`allolaw.model.compiling`.
 
 Backends: ``pymc`` (PyMC's own NUTS, pytensor C code), ``numpyro`` (JAX), ``nutpie`` (Rust
 sampler with low-rank mass-matrix adaptation; log density compiled with JAX, which uses the
@@ -16,37 +16,29 @@ kept in the attributes.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import logging
 import os
 import sys
 import time
 import warnings
-from importlib import metadata
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from allolaw import __version__
 from allolaw.errors import UserError
-from allolaw.io import atomic_path
-from allolaw.paths import clean_path, posterior_path, prepared_path
-from allolaw.runtime import LIGHTER_REWRITES
 
 if TYPE_CHECKING:
     import arviz as az
     import pymc as pm
+from allolaw.model.compiling import (
+    NUTPIE_COMPILE,
+    PREDICTIVE_COMPILE,
+    apply_jax_cache,
+    lighter_jax_rewrites,
+    per_draw_compile,
+)
 
-__all__ = [
-    "AUTO_BACKEND",
-    "BACKENDS",
-    "derive_seed",
-    "fit_dataset_model",
-    "fit_model",
-    "resolve_backend",
-]
+__all__ = ["AUTO_BACKEND", "BACKENDS", "fit_model", "resolve_backend"]
 
 log = logging.getLogger(__name__)
 
@@ -58,55 +50,6 @@ AUTO_BACKEND = "nutpie"
 
 #: The observed variable whose pointwise log-likelihood is kept (model comparison uses it).
 OBSERVED = "trait"
-
-#: How nutpie compiles the log density (see benchmarks/README.md for the measured choice).
-_NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BACKEND", "jax")}
-
-# The log-likelihood and prior draws are computed once per fit, so their compile time is
-# pure overhead: with PyTensor's default C mode a cold cache cost 32-35 s each on the
-# 172-species island models (measured here), against 5-9 s without C compilation
-# (FAST_COMPILE runs each operation through NumPy; the values are the same functions).
-# The prior draws keep FAST_COMPILE (the prior-only graph is small). The log-likelihood and
-# posterior predictive draws evaluate the whitened taxon tree once per draw (a few hundred
-# small operations): on island taxa_errors_curved_by_taxon, 4000 draws, FAST_COMPILE took
-# 20.1 s + 17.3 s, JAX (compiled once, persistent cache) 5.1 s + 3.8 s, same values.
-_PREDICTIVE_COMPILE: dict[str, str] = {"mode": "FAST_COMPILE"}  # copied per call: PyMC edits it
-
-
-def lighter_jax_rewrites() -> None:
-    """Leave :data:`allolaw.runtime.LIGHTER_REWRITES` out of PyTensor's JAX mode (idempotent)."""
-    # nutpie and PyMC's log-likelihood name the mode "JAX" (looked up in predefined_modes);
-    # PyMC's numpyro path uses pytensor.compile.mode.JAX directly: both are replaced
-    from pytensor.compile import mode
-
-    if all(name in mode.JAX.provided_optimizer.exclude for name in LIGHTER_REWRITES):
-        return
-    lighter = mode.JAX.excluding(*LIGHTER_REWRITES)
-    mode.JAX = lighter
-    mode.predefined_modes["JAX"] = lighter
-
-
-def _per_draw_compile() -> dict[str, str]:
-    # compile mode of the functions called once per posterior draw (a fresh dict per call)
-    try:
-        import jax  # noqa: F401
-    except ImportError:  # pragma: no cover - jax is a dependency; kept as a safe fallback
-        return dict(_PREDICTIVE_COMPILE)
-    _apply_jax_cache()
-    return {"mode": "JAX"}
-
-_VERSION_PACKAGES = (
-    "pymc",
-    "pytensor",
-    "arviz",
-    "numpy",
-    "jax",
-    "jaxlib",
-    "numpyro",
-    "nutpie",
-    "xarray",
-    "h5netcdf",
-)
 
 
 def fit_model(
@@ -146,7 +89,7 @@ def fit_model(
     prior_model
         The model to draw those from: ``build_model(..., prior_only=True)`` for models with
         taxon terms, whose sampled form depends on the data (see
-        :func:`allolaw.modeling.build_model`); ``model`` itself when not given.
+        :func:`allolaw.model.builder.build_model`); ``model`` itself when not given.
 
     Returns
     -------
@@ -162,7 +105,6 @@ def fit_model(
     ----------
     Hoffman, M. D. and Gelman, A. (2014). The No-U-Turn Sampler. JMLR 15, 1593–1623.
     """
-    import pymc as pm
 
     if OBSERVED not in model.named_vars or model[OBSERVED] not in model.observed_RVs:
         msg = f"the model has no observed variable named {OBSERVED!r}"
@@ -200,25 +142,53 @@ def fit_model(
         used = "pymc"
     log.info("fit: sampled in %.1f s (compile %.1f s)", sampling_s, compile_s)
 
+    predictive_s = _add_predictive_groups(idata, model, prior_model=prior_model, seeds=seeds,
+                                          prior_draws=prior_draws)
+
+    idata.attrs.update(
+        {
+            "backend": used,
+            "backend_requested": backend,
+            "backend_fallback": fallback,
+            "seed": int(seed),
+            "threads": int(threads),
+            "compile_seconds": round(compile_s, 3),
+            "sampling_seconds": round(sampling_s, 3),
+            "predictive_seconds": round(predictive_s, 3),
+            "wall_seconds": round(time.perf_counter() - wall_start, 3),
+        }
+    )
+    return idata
+
+
+
+def _add_predictive_groups(idata: az.InferenceData, model: pm.Model, *,
+                           prior_model: pm.Model | None, seeds: np.ndarray,
+                           prior_draws: int) -> float:
+    # Adds log_likelihood, posterior_predictive, prior, prior_predictive, observed_data and
+    # constant_data to the sampled idata (in place); drops warm-up groups and the sampler's
+    # unconstrained values. Returns the seconds it took.
+    import pymc as pm
+
     start = time.perf_counter()
     with model:
         if "log_likelihood" in idata.groups():
             del idata.log_likelihood
         pm.compute_log_likelihood(
             idata, var_names=[OBSERVED], model=model, progressbar=False,
-            compile_kwargs=_per_draw_compile(),
+            compile_kwargs=per_draw_compile(),
         )
         log.info("fit: log-likelihood of %r in %.1f s", OBSERVED, time.perf_counter() - start)
         phase = time.perf_counter()
         with warnings.catch_warnings():
-            # The taxon-tree potential (modeling._taxon_terms) is part of the posterior the
+            # The taxon-tree potential (model.terms.taxon_terms) is part of the posterior the
             # draws come from; the predictive draws only recompute the taxon values from the
             # sampled standard normals and draw the trait, so PyMC's generic warning that
             # potentials are ignored does not apply.
             warnings.filterwarnings("ignore", message="The effect of Potentials",
                                     category=UserWarning)
             # JAX mode compiles a copy of the (already seeded) random generator; the draws
-            # stay seeded (test_fitting checks that a rerun gives identical draws)
+            # stay seeded (tests/test_model_sampling.py checks that a rerun gives identical draws)
             warnings.filterwarnings("ignore", message="The RandomType SharedVariables",
                                     category=UserWarning)
             pm.sample_posterior_predictive(
@@ -227,13 +197,13 @@ def fit_model(
                 random_seed=int(seeds[1]),
                 progressbar=False,
                 extend_inferencedata=True,
-                compile_kwargs=_per_draw_compile(),
+                compile_kwargs=per_draw_compile(),
             )
         log.info("fit: posterior predictive in %.1f s", time.perf_counter() - phase)
         phase = time.perf_counter()
         prior = pm.sample_prior_predictive(draws=prior_draws, random_seed=int(seeds[2]),
                                            model=prior_model or model,
-                                           compile_kwargs=dict(_PREDICTIVE_COMPILE))
+                                           compile_kwargs=dict(PREDICTIVE_COMPILE))
         log.info("fit: %d prior draws in %.1f s", prior_draws, time.perf_counter() - phase)
     for group in ("warmup_posterior", "warmup_sample_stats"):  # nutpie keeps the warm-up
         if group in idata.groups():
@@ -254,110 +224,7 @@ def fit_model(
             idata.add_groups({group: getattr(prior, group)})
     predictive_s = time.perf_counter() - start
     log.info("fit: log-likelihood and predictive draws in %.1f s in all", predictive_s)
-
-    idata.attrs.update(
-        {
-            "backend": used,
-            "backend_requested": backend,
-            "backend_fallback": fallback,
-            "seed": int(seed),
-            "threads": int(threads),
-            "compile_seconds": round(compile_s, 3),
-            "sampling_seconds": round(sampling_s, 3),
-            "predictive_seconds": round(predictive_s, 3),
-            "wall_seconds": round(time.perf_counter() - wall_start, 3),
-        }
-    )
-    return idata
-
-
-def fit_dataset_model(
-    config: dict[str, Any],
-    dataset: str,
-    model_name: str,
-    *,
-    threads: int = 1,
-    target_accept: float | None = None,
-) -> az.InferenceData:
-    """Fit one model spec to one prepared dataset and write its ``posterior.nc``.
-
-    Parameters
-    ----------
-    config
-        The validated batch config (:func:`allolaw.config.load_config`).
-    dataset
-        Dataset name; ``results/<dataset>/clean.csv`` and ``prepared.json`` must exist.
-    model_name
-        Model spec name (``models/<name>.yaml``).
-    threads
-        Cores for the job.
-    target_accept
-        Overrides ``sampler.target_accept`` (the check stage's refit after divergences).
-
-    Returns
-    -------
-    arviz.InferenceData
-        The fit, with the attributes listed in DEVELOPERS.md.
-
-    Raises
-    ------
-    UserError
-        If the prepared files are missing or lack a needed entry.
-    """
-    from allolaw.modeling import build_model
-    from allolaw.spec import load_spec
-
-    wall_start = time.perf_counter()
-    results = Path(config["results_dir"])
-    clean_file = clean_path(results, dataset)
-    from allolaw.intake import read_clean, read_prepared
-
-    data = read_clean(results, dataset)
-    prepared = read_prepared(results, dataset)
-    levels = _levels(config, dataset, prepared)
-    log_reference_size = _log_reference_size(prepared, prepared_path(results, dataset))
-    spec = load_spec(config["models_dir"], model_name)
-    sampler = dict(config["sampler"])
-    if target_accept is not None:
-        sampler["target_accept"] = float(target_accept)
-    seed = derive_seed(int(sampler["seed"]), dataset, model_name)
-
-    log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
-    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
-    prior_model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
-                              prior_only=True)
-    idata = fit_model(
-        model,
-        chains=int(sampler["chains"]),
-        draws=int(sampler["draws"]),
-        tune=int(sampler["tune"]),
-        target_accept=float(sampler["target_accept"]),
-        seed=seed,
-        backend=str(sampler.get("backend", "auto")),
-        threads=threads,
-        prior_draws=int(sampler.get("prior_draws", 500)),
-        prior_model=prior_model,
-    )
-    idata.attrs.update(
-        {
-            "allolaw_version": __version__,
-            "dataset": dataset,
-            "model": model_name,
-            "spec": json.dumps(spec.to_dict(), sort_keys=True, default=str),
-            "sampler": json.dumps(sampler, sort_keys=True),
-            "data_sha256": _sha256(clean_file),
-            "versions": json.dumps(_versions(), sort_keys=True),
-            "log_reference_size": float(log_reference_size),
-            "refit": json.dumps(target_accept is not None),
-            "wall_seconds": round(time.perf_counter() - wall_start, 3),
-        }
-    )
-    out = posterior_path(results, dataset, model_name)
-    with atomic_path(out) as tmp:
-        idata.to_netcdf(str(tmp), engine="h5netcdf")
-    log.info("fit %s/%s: wrote %s", dataset, model_name, out)
-    return idata
-
+    return predictive_s
 
 def resolve_backend(backend: str) -> str:
     """Return the backend ``backend`` names (``"auto"`` → :data:`AUTO_BACKEND`).
@@ -373,15 +240,6 @@ def resolve_backend(backend: str) -> str:
         msg = f"sampler.backend: unknown backend {backend!r}; use auto, {', '.join(BACKENDS)}"
         raise UserError(msg)
     return backend
-
-
-def derive_seed(base: int, dataset: str, model: str) -> int:
-    """Return a seed in ``[0, 2**32)`` fixed by ``base``, ``dataset`` and ``model``.
-
-    Built from SHA-256 (stable across processes and machines, unlike Python's ``hash``).
-    """
-    digest = hashlib.sha256(f"{int(base)}\x1f{dataset}\x1f{model}".encode()).digest()
-    return int.from_bytes(digest[:4], "little")
 
 
 def _sample(
@@ -416,15 +274,15 @@ def _sample(
     if backend == "pymc":
         kwargs["cores"] = max(1, min(threads, chains))
     elif backend == "numpyro":
-        _apply_jax_cache()
+        apply_jax_cache()
         import jax
 
         parallel = threads >= chains and jax.local_device_count() >= chains
         kwargs["nuts_sampler"] = "numpyro"
         kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential"}
     elif backend == "nutpie":
-        if _NUTPIE_COMPILE.get("backend") == "jax":
-            _apply_jax_cache()
+        if NUTPIE_COMPILE.get("backend") == "jax":
+            apply_jax_cache()
         log.info("fit: %s sampling started", backend)
         start = time.perf_counter()
         idata, sampling = _sample_nutpie(
@@ -458,7 +316,7 @@ def _sample_nutpie(
     # applies (assign_step_methods): on island taxa_errors_curved_by_taxon 31 s of the 105 s
     # pm.sample took (profiled), thrown away, as nutpie differentiates the graph itself.
     # Same compile options, seed, sampler settings and groups as PyMC's route, so the same
-    # draws (tests/test_fitting.py checks that against pm.sample). Returns (idata, seconds
+    # draws (tests/test_model_sampling.py checks that against pm.sample). Returns (idata, seconds
     # of nutpie.sample, which include the first evaluation's XLA compile, as PyMC counts it).
     import arviz as az
     import nutpie
@@ -469,7 +327,7 @@ def _sample_nutpie(
         find_observations,
     )
 
-    compiled = nutpie.compile_pymc_model(model, **_NUTPIE_COMPILE)
+    compiled = nutpie.compile_pymc_model(model, **NUTPIE_COMPILE)
     start = time.time()
     idata = nutpie.sample(
         compiled, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
@@ -489,55 +347,8 @@ def _sample_nutpie(
     return idata, sampling
 
 
-def _apply_jax_cache() -> None:
-    # JAX reads JAX_COMPILATION_CACHE_DIR only when it is first imported; set the options
-    # again in case JAX was imported before runtime.configure_job ran.
-    import jax
-
-    cache_dir = os.environ.get("JAX_COMPILATION_CACHE_DIR")
-    if cache_dir and jax.config.jax_compilation_cache_dir != cache_dir:
-        jax.config.update("jax_compilation_cache_dir", cache_dir)
-        jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
-
-
 def _show_progress() -> bool:
     # Progress bars only for a person at a terminal; Snakemake jobs and CI get log lines.
     if os.environ.get("CI") or os.environ.get("ALLOLAW_NO_PROGRESS"):
         return False
     return sys.stderr.isatty()
-
-
-def _levels(config: dict[str, Any], dataset: str, prepared: dict[str, Any]) -> list[str]:
-    for key in ("levels", "taxon_levels"):
-        if isinstance(prepared.get(key), list):
-            return [str(level) for level in prepared[key]]
-    sources = config["datasets"][dataset].get("sources", [])
-    return list(sources[0].get("columns", {}).get("levels", [])) if sources else []
-
-
-def _log_reference_size(prepared: dict[str, Any], path: Path) -> float:
-    value = prepared.get("log_reference_size")
-    if value is None and isinstance(prepared.get("reference_size"), dict):
-        value = prepared["reference_size"].get("log")
-    if value is None:
-        msg = f"{path}: no 'log_reference_size' entry; rerun `allolaw prepare`"
-        raise UserError(msg)
-    return float(value)
-
-
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
-def _versions() -> dict[str, str]:
-    versions = {}
-    for name in _VERSION_PACKAGES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            versions[name] = "not installed"
-    return versions

@@ -1,0 +1,126 @@
+"""The ``check`` stage: one fit checked, refitted once on divergences, written as JSON.
+
+:func:`check_dataset_model` loads a fit, checks it (:mod:`allolaw.checks.convergence`), refits
+once with a higher target acceptance when the sampler diverged, adds posterior and prior
+predictive checks (:mod:`allolaw.checks.predictive`) and writes ``results/<d>/checks/<m>.json``.
+A failed check is written, never dropped: the verdict travels on to the comparison and the
+report.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import time
+from typing import Any
+
+import numpy as np
+
+from allolaw import paths
+from allolaw.checks.convergence import CheckResult, check_fit
+from allolaw.checks.predictive import innermost_groups, ppc_findings, predictive_checks
+from allolaw.checks.reading import read_posterior
+from allolaw.errors import UserError
+from allolaw.io import atomic_path, write_json
+
+__all__ = ["check_dataset_model"]
+
+log = logging.getLogger(__name__)
+
+
+def check_dataset_model(
+    config: dict[str, Any], dataset: str, model: str, *, threads: int = 1
+) -> str:
+    """The ``check`` stage: check one fit, refit once on divergences, write the check JSON.
+
+    Parameters
+    ----------
+    config
+        Validated batch config.
+    dataset, model
+        Names from the config.
+    threads
+        Cores for the one refit, if needed.
+
+    Returns
+    -------
+    str
+        The verdict, ``pass``, ``warn`` or ``fail``.
+    """
+    results = config["results_dir"]
+    post_path = paths.posterior_path(results, dataset, model)
+    if not post_path.is_file():
+        msg = f"{post_path}: no fit of model '{model}' for dataset '{dataset}'; run `allolaw fit`"
+        raise UserError(msg)
+    start = time.perf_counter()
+    idata = read_posterior(post_path)
+    result, findings = check_fit(idata)
+    refit: dict[str, Any] | None = None
+    if result.n_divergent > 0:
+        target = float(config["sampler"]["refit_target_accept"])
+        before = _refit_numbers(result)
+        log.info("%s/%s: %d divergences; refitting once with target_accept=%.3f",
+                 dataset, model, result.n_divergent, target)
+        from allolaw.model.fitting import fit_dataset_model
+
+        refit_start = time.perf_counter()
+        idata = fit_dataset_model(config, dataset, model, threads=threads, target_accept=target)
+        refit_seconds = time.perf_counter() - refit_start
+        result, findings = check_fit(idata)
+        refit = {
+            "reason": f"{before['n_divergent']} divergent transitions in the first fit",
+            "target_accept": target,
+            "before": before,
+            "after": _refit_numbers(result),
+        }
+        # the refit's wall time goes to the posterior's attributes (which hold run times
+        # anyway), not to the check JSON, which reruns must reproduce byte for byte
+        idata.attrs["refit"] = json.dumps({**refit, "seconds": round(refit_seconds, 3)},
+                                          sort_keys=True)
+        idata.load()
+        with atomic_path(post_path) as tmp:
+            idata.to_netcdf(str(tmp))
+        findings.insert(0, (
+            f"The first fit had {before['n_divergent']} divergent transitions; it was refitted "
+            f"once with target acceptance {target:g}, leaving {result.n_divergent}."
+        ))
+    groups = innermost_groups(config, dataset, idata)
+    ppc = predictive_checks(idata, groups=groups)
+    findings.extend(ppc_findings(ppc))
+    payload = {
+        "dataset": dataset,
+        "model": model,
+        "verdict": result.verdict,
+        "diagnostics": result.to_list(),
+        "findings": findings,
+        "refit": refit,
+        "ppc": ppc,
+    }
+    write_json(paths.check_path(results, dataset, model), _clean_json(payload))
+    # the check runs inside the fit job of the workflow; this line is how
+    # benchmarks/batch_cost.py tells its seconds from the fit's
+    log.info("check %s/%s: %s; check done in %.2f s", dataset, model, result.verdict,
+             time.perf_counter() - start)
+    return result.verdict
+
+
+def _refit_numbers(result: CheckResult) -> dict[str, Any]:
+    return {
+        "verdict": result.verdict,
+        "n_divergent": result.n_divergent,
+        "diagnostics": {d.name: d.value for d in result.diagnostics},
+    }
+
+
+def _clean_json(obj: Any) -> Any:
+    """Replace NaN/inf (not JSON) by None, recursively."""
+    if isinstance(obj, dict):
+        return {k: _clean_json(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_clean_json(v) for v in obj]
+    if isinstance(obj, float | np.floating) and not math.isfinite(float(obj)):
+        return None
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return obj

@@ -1,0 +1,173 @@
+"""The model builder: a validated spec plus a clean table become one PyMC model.
+
+The law, for species i in innermost taxon t, is::
+
+    log trait_i = a_t + b_t·(x_i − x_ref) + c_t·(x_i − x_ref)² [+ hinge] [+ Σ coef·z_i] + e_i
+
+with x_i the natural log of size (the latent true log size when size carries measurement
+error), x_ref the log reference size, and e_i normal or Student-t. A taxon at an inner level
+deviates from its parent taxon at the next level out (order → family); the outermost taxa
+deviate from the population values. Variable names and dims follow the data contract in
+DEVELOPERS.md, so later stages read them by name.
+
+The inputs are read in :mod:`allolaw.model.inputs`, the terms built in
+:mod:`allolaw.model.terms`.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pymc as pm
+import pytensor.tensor as pt
+
+from allolaw.model.inputs import read_inputs
+from allolaw.model.spec import ModelSpec
+from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
+
+__all__ = ["TRAIT", "build_model"]
+
+log = logging.getLogger(__name__)
+#: Name of the observed trait variable (the only one in ``log_likelihood``).
+TRAIT = "trait"
+
+
+def build_model(
+    data: pd.DataFrame,
+    spec: ModelSpec,
+    *,
+    levels: list[str],
+    log_reference_size: float,
+    prior_only: bool = False,
+) -> pm.Model:
+    """Build the PyMC model of ``spec`` for one clean table.
+
+    Parameters
+    ----------
+    data
+        One row per species in the ``clean.csv`` format (DEVELOPERS.md). ``data.attrs
+        ["source"]``, when set, names the file in error messages.
+    spec
+        Validated model spec.
+    levels
+        Taxon level columns of the dataset, outer to inner.
+    log_reference_size
+        Natural log of the reference size; log size is centred there, so ``intercept`` is
+        the log trait of a species of reference size.
+    prior_only
+        Build the model for prior draws: the taxon values are written in the plain
+        non-centred form, without the data-whitened map (whose potential prior sampling
+        would ignore). Same variables, same joint prior.
+
+    Returns
+    -------
+    pymc.Model
+        With coords ``species`` and one per taxon level used; the observed variable ``trait``
+        (dim ``species``) and the data ``log_size_obs`` and ``log_size_ref``.
+
+    Raises
+    ------
+    UserError
+        If a column the spec needs is missing or holds a missing or invalid value.
+
+    Notes
+    -----
+    Errors in size are modelled structurally: each species has a latent true log size with a
+    normal population prior (mean and SD estimated), and the measured log size is normal
+    around it with the known SD (Carroll et al. 2006, ch. 9; Richardson & Gilks 1993). With
+    ``ratio`` errors this is the Bayesian form of Deming regression (Deming 1943).
+    Taxon deviations are independent normal terms per level (no correlation between the
+    intercept and exponent deviations of a taxon). The sampler sees them whitened by the data
+    (:func:`taxon_terms`), which removes the funnels of hierarchical models (Betancourt &
+    Girolami 2015) without choosing between centred and non-centred forms.
+
+    References
+    ----------
+    .. [1] Carroll, R. J., Ruppert, D., Stefanski, L. A. & Crainiceanu, C. M. (2006).
+       Measurement Error in Nonlinear Models, 2nd ed. Chapman & Hall/CRC.
+    .. [2] Richardson, S. & Gilks, W. R. (1993). Conditional independence models for
+       epidemiological studies with covariate measurement error. Stat. Med. 12:1703–1722.
+    .. [3] Deming, W. E. (1943). Statistical Adjustment of Data. Wiley.
+    .. [4] Gillooly, J. F. et al. (2001). Effects of size and temperature on metabolic rate.
+       Science 293:2248–2251.
+    .. [5] Betancourt, M. & Girolami, M. (2015). Hamiltonian Monte Carlo for hierarchical
+       models. In Current Trends in Bayesian Methodology with Applications, CRC.
+    """
+    inputs = read_inputs(data, spec, levels=levels)
+    pri = spec.priors
+    coords: dict[str, Any] = {"species": inputs.species}
+    for level, taxa in inputs.taxa.items():
+        coords[level] = taxa.labels
+    intercept_mean = pri["intercept"].get("mean", "auto")
+    if intercept_mean == "auto":
+        intercept_mean = float(np.median(inputs.log_trait))
+    term_priors = {
+        "intercept": {"mean": intercept_mean, "sd": pri["intercept"]["sd"]},
+        "exponent": pri["exponent"],
+        "curvature": pri["curvature"],
+    }
+    terms = ["intercept", "exponent"] + (["curvature"] if spec.curvature != "none" else [])
+    varying = [t for t in terms if t in _varying_terms(spec)] if inputs.taxa else []
+    with pm.Model(coords=coords) as model:
+        log_size_obs = pm.Data("log_size_obs", inputs.log_size, dims="species")
+        log_size_ref = pm.Data("log_size_ref", float(log_reference_size))
+        for level, taxa in inputs.taxa.items():
+            pm.Data(f"taxon_index__{level}", taxa.index, dims="species")
+
+        # terms shared by all species
+        shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
+                  for t in terms if t not in varying}
+        sigma = residual_sd(spec)
+        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma)
+        if spec.size_error == "ratio":
+            sigma = size.sigma
+        centred_size = size.value - log_size_ref
+        feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
+                   "curvature": centred_size**2}
+
+        offset = sum((shared[t] * feature[t] for t in shared), pt.zeros_like(centred_size))
+        for cov in spec.covariates:
+            offset = offset + covariate_term(cov, inputs, pri["covariate"])
+        if spec.breakpoint == "one" and "exponent" in shared:
+            offset = offset + hinge(spec, inputs, size.value, log_size_ref, shared["exponent"])
+
+        total_sd = sigma
+        if spec.trait_error in ("known", "replicates"):
+            sd_trait = pm.Data("sd_log_trait", inputs.sd_trait, dims="species")
+            total_sd = pt.sqrt(sigma**2 + sd_trait**2)
+
+        mu = offset
+        if varying:
+            # the taxon values are whitened by the data (see taxon_terms); the prior draws
+            # and `parameterisation: non-centred` use the plain non-centred form
+            whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
+            per_species = taxon_terms(
+                varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
+                features=feature if whiten else None,
+                target=pt.as_tensor_variable(inputs.log_trait) - offset,
+                noise_var=total_sd**2 * pt.ones_like(centred_size),
+            )
+            for t in varying:
+                mu = mu + per_species[t] * feature[t]
+            if spec.breakpoint == "one" and "exponent" in varying:
+                mu = mu + hinge(spec, inputs, size.value, log_size_ref, model["exponent"])
+
+        if spec.residuals == "student_t":
+            nu = pm.Gamma("nu", alpha=pri["nu"]["alpha"], beta=pri["nu"]["beta"])
+            pm.StudentT(TRAIT, nu=nu, mu=mu, sigma=total_sd, observed=inputs.log_trait,
+                        dims="species")
+        else:
+            pm.Normal(TRAIT, mu=mu, sigma=total_sd, observed=inputs.log_trait, dims="species")
+    log.debug("built model %s (taxon terms %s, prior_only=%s)", spec.name, varying, prior_only)
+    return model
+
+
+def _varying_terms(spec: ModelSpec) -> list[str]:
+    # the terms of the law that get taxon deviations
+    terms = list(spec.taxa["vary"])
+    if spec.curvature == "shared_and_taxa":
+        terms.append("curvature")
+    return terms

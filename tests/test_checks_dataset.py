@@ -1,0 +1,107 @@
+"""The check stage: refit once on divergences, the check JSON, fit and check in one process."""
+
+import json
+import sys
+import time
+import types
+
+import arviz as az
+
+from allolaw import paths
+from allolaw.checks.dataset import check_dataset_model
+from allolaw.config import validate_config
+from allolaw.testing.posteriors import line_posterior
+
+
+def _config(tmp_path):
+    return validate_config({
+        "results_dir": str(tmp_path / "results"),
+        "datasets": {
+            "toy": {
+                "sources": [{"file": "toy.csv",
+                             "columns": {"species": "sp", "size": "m", "trait": "r"}}],
+                "size": {"quantity": "mass", "unit": "g"},
+                "trait": {"quantity": "power", "unit": "W"},
+                "models": ["pooled"],
+            }
+        },
+    })
+
+
+def _write_fit(config, idata):
+    path = paths.posterior_path(config["results_dir"], "toy", "pooled")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    idata.to_netcdf(str(path))
+    return path
+
+
+def test_divergent_fit_is_refitted_once_and_the_refit_is_recorded(tmp_path, monkeypatch):
+    config = _config(tmp_path)
+    post = _write_fit(config, line_posterior(seed=11, n_divergent=12))
+    calls = []
+
+    def fake_fit(config, dataset, model, *, threads=1, target_accept=None):
+        calls.append(target_accept)
+        time.sleep(0.05)
+        idata = line_posterior(seed=12)
+        idata.to_netcdf(str(post))
+        return idata
+
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting",
+                        types.SimpleNamespace(fit_dataset_model=fake_fit))
+    verdict = check_dataset_model(config, "toy", "pooled")
+    assert calls == [0.99]
+    assert verdict == "pass"
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["refit"]["before"]["n_divergent"] == 12
+    assert report["refit"]["after"]["n_divergent"] == 0
+    assert "refitted once" in report["findings"][0]
+    recorded = json.loads(az.from_netcdf(post).attrs["refit"])
+    assert recorded["target_accept"] == 0.99
+    # the refit's wall time is kept with the posterior (not in the JSON, which reruns
+    # reproduce byte for byte)
+    assert recorded["seconds"] >= 0.05
+    assert "seconds" not in report["refit"]
+
+
+def test_failed_check_is_written_not_hidden(tmp_path, monkeypatch):
+    config = _config(tmp_path)
+    _write_fit(config, line_posterior(seed=13, shift_chain=5.0))
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    assert check_dataset_model(config, "toy", "pooled") == "fail"
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["verdict"] == "fail"
+    assert report["refit"] is None
+    assert {d["name"] for d in report["diagnostics"]} >= {"rhat", "ess_bulk", "bfmi", "pareto_k"}
+    assert "loo_pit" in report["ppc"]
+
+
+def test_fit_with_check_writes_both_outputs_in_one_process(tmp_path, monkeypatch, caplog):
+    # the workflow's fit job runs `allolaw fit --check`: the fit, then the check stage on the
+    # posterior it wrote, with the check's own seconds in the log (benchmarks/batch_cost.py)
+    import yaml
+
+    from allolaw import runtime
+    from allolaw.cli import main
+    from allolaw.model import fitting
+
+    config = _config(tmp_path)
+    config_file = tmp_path / "config.yaml"
+    config_file.write_text(yaml.safe_dump({"results_dir": config["results_dir"],
+                                           "datasets": config["datasets"]}))
+    fitted = []
+
+    def fake_fit(config, dataset, model, *, threads=1, target_accept=None):
+        fitted.append((dataset, model, threads))
+        return _write_fit(config, line_posterior(seed=15))
+
+    monkeypatch.setattr(fitting, "fit_dataset_model", fake_fit)
+    monkeypatch.setattr(runtime, "configure_job", lambda threads: {})  # keep this process's env
+    with caplog.at_level("INFO", logger="allolaw.checks.dataset"):
+        code = main(["fit", "--config", str(config_file), "--dataset", "toy", "--model",
+                     "pooled", "--threads", "2", "--check"])
+    assert code == 0
+    assert fitted == [("toy", "pooled", 2)]
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["verdict"] == "pass"
+    assert any("check done in" in r.getMessage() for r in caplog.records)
