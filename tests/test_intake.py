@@ -250,7 +250,7 @@ def test_family_in_two_orders_lists_the_rows(tmp_path):
     source = {"columns": {"species": "species", "size": "mass", "trait": "rate",
                           "levels": ["order", "family"]}}
     message = _error(tmp_path, text, source=source)
-    assert "family 'F' is placed in more than one order" in message
+    assert "family placed in more than one order: family 'F'" in message
     assert "t.csv, line 2: O1" in message
     assert "t.csv, line 3: O2" in message
 
