@@ -18,6 +18,7 @@ from scipy import stats
 from allolaw import fitting
 from allolaw.errors import UserError
 from allolaw.fitting import derive_seed, fit_dataset_model, fit_model, resolve_backend
+from allolaw.intake.manifest import write_manifest
 from allolaw.runtime import LIGHTER_REWRITES
 
 REPO = Path(__file__).resolve().parents[1]
@@ -298,6 +299,7 @@ def _write_prepared(results: Path, dataset: str) -> None:
     prepared = {"dataset": dataset, "reference_size": 50.0,
                 "log_reference_size": float(np.log(50.0)), "levels": ["family"]}
     (folder / "prepared.json").write_text(json.dumps(prepared), encoding="utf-8")
+    write_manifest(results, dataset, inputs=[], config_sha256=None)
 
 
 def _stage_config(tmp_path: Path) -> dict:

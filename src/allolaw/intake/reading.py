@@ -6,7 +6,9 @@ line (no non-empty field, e.g. ``,,,`` or ``""``; counted, not a row), the heade
 non-blank line) or a data line (one ledger row each). A quote that opens on a line and does not
 close on it either runs over a line break inside a quoted cell (every line of that record is
 dropped with a reason: allolaw reads one row per line) or is never closed (that line alone is
-dropped, and reading goes on with the next line).
+dropped, and reading goes on with the next line). A quoted cell never runs over a blank line
+(nothing but spaces, delimiters and empty quotes) or more than 50 lines. Text right after a
+closing quote (``"9"9``, which a lenient reader would read as ``99``) drops the line.
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ _PROGRESS_EVERY = 100_000
 # How many lines a quoted cell may run over before the quote counts as never closed.
 _QUOTE_WINDOW = 50
 _LINE_END = re.compile(r"\r\n|\r|\n")
+_BLANK = re.compile(r"[\s,;|]*")
 _NAMES = {",": "comma", "\t": "tab", ";": "semicolon", "|": "pipe"}
 
 
@@ -197,24 +200,35 @@ def _record_at(lines: list[str], i: int, delimiter: str) -> tuple[list[str], int
     if '"' not in line:
         return line.split(delimiter), 1, ""
     cells = next(csv.reader([line], delimiter=delimiter), [])
-    if not _open_at_end(line, delimiter):
+    state = _quote_state(line, delimiter)
+    if state == "closed":
         return cells, 1, ""
-    window = lines[i : i + _QUOTE_WINDOW]
+    if state == "malformed":
+        return cells, 1, (
+            "malformed quoting (text right after a closing quote, as in '\"9\"9'); quote the "
+            "whole cell or none of it"
+        )
+    window = [lines[i]]
+    for later in lines[i + 1 : i + _QUOTE_WINDOW]:
+        if _BLANK.fullmatch(later.replace('""', "")):
+            break  # a blank line is never part of a record
+        window.append(later)
     reader = csv.reader((x + "\n" for x in window), delimiter=delimiter)
     joined = next(reader, [])
     span = reader.line_num
-    if span > 1 and not _open_at_end("\n".join(window[:span]), delimiter):
+    if span > 1 and _quote_state("\n".join(window[:span]), delimiter) == "closed":
         return joined, span, ""
     return cells, 1, "an unclosed quote (a quote opens a cell and never closes on this line)"
 
 
-def _open_at_end(text: str, delimiter: str) -> bool:
+def _quote_state(text: str, delimiter: str) -> str:
+    """``closed``, ``open`` (ends inside a quoted cell) or ``malformed`` (strict CSV)."""
     try:
         for _ in csv.reader([text], delimiter=delimiter, strict=True):
             pass
     except csv.Error as err:
-        return "unexpected end of data" in str(err)
-    return False
+        return "open" if "unexpected end of data" in str(err) else "malformed"
+    return "closed"
 
 
 def _delimiter(source: dict[str, Any], path: Path) -> str:
