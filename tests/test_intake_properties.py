@@ -79,7 +79,7 @@ def _physical_data_lines(raw: bytes) -> int:
     return len(lines) - len(blank) - 1
 
 
-@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(table=tables())
 def test_random_tables_exit_0_or_2_and_keep_written_values(table):
     with tempfile.TemporaryDirectory() as folder:
