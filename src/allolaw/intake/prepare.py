@@ -97,43 +97,15 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
     columns, levels = _dataset_levels(ds, dataset, warnings)
     covariate_units: dict[str, str] = dict(ds.get("covariates") or {})
     covariates = _dataset_covariates(ds, dataset)
-    where_cfg = f"config datasets.{dataset}"
-    check_unit(ds["size"]["unit"], ds["size"]["quantity"], where=f"{where_cfg}.size.unit")
-    check_unit(ds["trait"]["unit"], ds["trait"]["quantity"], where=f"{where_cfg}.trait.unit")
-    for name, unit in covariate_units.items():
-        check_unit(unit, None, where=f"{where_cfg}.covariates.{name}")
-
-    tables = _read_sources(ds, dataset)
-    rows = Rows()
-    conversions: dict[tuple[str, str, str, str], dict[str, Any]] = {}
-    for table, source in zip(tables, ds["sources"], strict=True):
-        parse_rows(table, source, ds, levels=levels, covariates=covariates,
-                   covariate_units=covariate_units, energy=energy, rows=rows,
-                   conversions=conversions)
-    if rows.renamed:
-        warnings.append(
-            f"{rows.renamed} species names changed by Unicode normalisation (NFC, invisible "
-            "format characters removed): spellings that differ only so are one species"
-        )
-    check_drop_share(rows, tables, max_share=float(ds.get("max_dropped_share", 0.5)))
+    tables, rows, conversions = _read_rows(ds, dataset, levels=levels, covariates=covariates,
+                                           covariate_units=covariate_units, energy=energy,
+                                           warnings=warnings)
     usable = [i for i, r in enumerate(rows.reason) if not r]
-    if not usable:
-        msg = (
-            f"dataset '{dataset}': none of the {len(rows.line)} input rows is usable; "
-            f"first reason: {rows.file[0]}, line {rows.line[0]}: {rows.reason[0]}"
-        )
-        raise UserError(msg)
     frame = usable_frame(rows, usable, levels, covariates)
     check_taxonomy(frame, levels)
     frame, outliers = _outliers(ds, dataset, rows, frame)
 
-    clean, pooled = aggregate_species(frame, levels=levels, covariates=covariates)
-    singletons = singleton_taxa(clean, levels)
-    clean["flag_singleton_taxon"] = False
-    for level, taxa in singletons.items():
-        clean.loc[clean[level].isin(taxa), "flag_singleton_taxon"] = True
-    clean["flag_outlier"] = clean["species"].isin(outliers["species"])
-    clean = order_clean(clean, levels, covariates)
+    clean, pooled, singletons = _species_table(frame, levels, covariates, outliers["species"])
     ledger = build_ledger(rows, frame)
     counts = check_accounting(ledger, tables, len(clean))
 
@@ -175,6 +147,50 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
     )
     log.info(summary)
     return summary
+
+
+def _read_rows(ds: dict[str, Any], dataset: str, *, levels: list[str], covariates: list[str],
+               covariate_units: dict[str, str], energy: float, warnings: list[str],
+               ) -> tuple[list[Table], Rows, dict[tuple[str, str, str, str], dict[str, Any]]]:
+    """Check the canonical units, read every source and parse its lines."""
+    where_cfg = f"config datasets.{dataset}"
+    check_unit(ds["size"]["unit"], ds["size"]["quantity"], where=f"{where_cfg}.size.unit")
+    check_unit(ds["trait"]["unit"], ds["trait"]["quantity"], where=f"{where_cfg}.trait.unit")
+    for name, unit in covariate_units.items():
+        check_unit(unit, None, where=f"{where_cfg}.covariates.{name}")
+    tables = _read_sources(ds, dataset)
+    rows = Rows()
+    conversions: dict[tuple[str, str, str, str], dict[str, Any]] = {}
+    for table, source in zip(tables, ds["sources"], strict=True):
+        parse_rows(table, source, ds, levels=levels, covariates=covariates,
+                   covariate_units=covariate_units, energy=energy, rows=rows,
+                   conversions=conversions)
+    if rows.renamed:
+        warnings.append(
+            f"{rows.renamed} species names changed by Unicode normalisation (NFC, invisible "
+            "format characters removed): spellings that differ only so are one species"
+        )
+    check_drop_share(rows, tables, max_share=float(ds.get("max_dropped_share", 0.5)))
+    if all(rows.reason):
+        msg = (
+            f"dataset '{dataset}': none of the {len(rows.line)} input rows is usable; "
+            f"first reason: {rows.file[0]}, line {rows.line[0]}: {rows.reason[0]}"
+        )
+        raise UserError(msg)
+    return tables, rows, conversions
+
+
+def _species_table(frame: pd.DataFrame, levels: list[str], covariates: list[str],
+                   outlier_species: list[str],
+                   ) -> tuple[pd.DataFrame, dict[str, Any], dict[str, list[str]]]:
+    """clean.csv in contract order, the pooled SDs and the singleton taxa."""
+    clean, pooled = aggregate_species(frame, levels=levels, covariates=covariates)
+    singletons = singleton_taxa(clean, levels)
+    clean["flag_singleton_taxon"] = False
+    for level, taxa in singletons.items():
+        clean.loc[clean[level].isin(taxa), "flag_singleton_taxon"] = True
+    clean["flag_outlier"] = clean["species"].isin(outlier_species)
+    return order_clean(clean, levels, covariates), pooled, singletons
 
 
 def _read_sources(ds: dict[str, Any], dataset: str) -> list[Table]:
