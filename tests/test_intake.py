@@ -249,7 +249,7 @@ def test_family_in_two_orders_lists_the_rows(tmp_path):
     source = {"columns": {"species": "species", "size": "mass", "trait": "rate",
                           "levels": ["order", "family"]}}
     message = _error(tmp_path, text, source=source)
-    assert "family 'F' is placed in more than one order" in message
+    assert "family placed in more than one order: family 'F'" in message
     assert "t.csv, line 2: O1" in message
     assert "t.csv, line 3: O2" in message
 
@@ -685,3 +685,41 @@ def test_covariate_unit_without_canonical_unit_is_a_user_error(tmp_path):
     }
     message = _error(tmp_path, text, source=source)
     assert "covariate 'temp' has a unit in the source but no canonical unit" in message
+
+
+def test_flagged_replicate_does_not_feed_the_pooled_sd(tmp_path):
+    # Two clean replicate pairs (S 10, S 20) and S 5, whose second row is a ×50 slip (flagged).
+    rows = {line.split(",")[0]: line.split(",") for line in _outlier_table().splitlines()}
+    extra = "".join(f"{s},{rows[s][1]},{float(rows[s][2]) * f:.6g},{float(rows[s][3]) * f:.6g}\n"
+                    for s, f in (("S 10", 1.05), ("S 20", 0.95)))
+    clean, _, prepared = _prepare(tmp_path, _outlier_table() + extra)
+    c = clean.set_index("species")
+    assert prepared["outliers"]["species"] == ["S 5"]
+    logs = {}
+    text = (_outlier_table() + extra).splitlines()[1:]
+    for line in text:
+        name, _, mass, rate = line.split(",")
+        logs.setdefault(name, []).append((math.log(float(mass)), math.log(float(rate))))
+    # Pooled SD over S 10 and S 20 only: one degree of freedom each, so the root mean of the
+    # two replicate variances (ddof 1), computed here by hand.
+    for k, col in ((0, "size"), (1, "trait")):
+        variances = [np.var([x[k] for x in logs[s]], ddof=1) for s in ("S 10", "S 20")]
+        pooled = math.sqrt(sum(variances) / 2)
+        assert prepared["pooled_within_sd"][col]["sd"] == pytest.approx(pooled, rel=1e-9)
+        assert prepared["pooled_within_sd"][col]["species"] == 2
+        assert c.loc["S 0", f"sd_log_{col}"] == pytest.approx(pooled, rel=1e-9)
+        assert c.loc["S 0", f"sd_source_{col}"] == "pooled"
+    # S 5 itself keeps both rows in its own mean and replicate SD.
+    assert c.loc["S 5", "n_rows"] == 2
+    assert c.loc["S 5", "sd_source_trait"] == "replicates"
+
+
+def test_taxonomy_conflict_message_lists_a_few_and_counts_the_rest(tmp_path):
+    lines = ["species,family,mass,rate"]
+    for i in range(3000):
+        lines += [f"S {i},F{i % 7},{i + 1},{i + 1}", f"S {i},G{i % 5},{i + 2},{i + 2}"]
+    message = _error(tmp_path, "\n".join(lines) + "\n")
+    assert message.startswith("3000 species placed in more than one taxon")
+    assert "species 'S 0'" in message
+    assert "and 2995 more species (first 5 shown)" in message
+    assert len(message) < 2000

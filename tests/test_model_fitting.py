@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 
 from allolaw.errors import UserError
+from allolaw.intake.manifest import write_manifest
 from allolaw.model import fitting
 from allolaw.model.fitting import derive_seed, fit_dataset_model
 from test_model_sampling import _line_data
@@ -62,6 +63,7 @@ def _write_prepared(results: Path, dataset: str) -> None:
     prepared = {"dataset": dataset, "reference_size": 50.0,
                 "log_reference_size": float(np.log(50.0)), "levels": ["family"]}
     (folder / "prepared.json").write_text(json.dumps(prepared), encoding="utf-8")
+    write_manifest(results, dataset, inputs=[], config_sha256=None)
 
 
 def _stage_config(tmp_path: Path) -> dict:

@@ -19,6 +19,7 @@ def test_rule_paths_match_the_package_layout():
         str(paths.clean_path("RESULTS", "{dataset}")),
         str(paths.ledger_path("RESULTS", "{dataset}")),
         str(paths.prepared_path("RESULTS", "{dataset}")),
+        str(paths.manifest_path("RESULTS", "{dataset}")),
         str(paths.posterior_path("RESULTS", "{dataset}", "{model}")),
         str(paths.check_path("RESULTS", "{dataset}", "{model}")),
         str(paths.comparison_path("RESULTS", "{dataset}")),

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from allolaw.errors import UserError
-from allolaw.units import (
+from allolaw.intake.units import (
     DEFAULT_ENERGY_PER_ML_O2_JOULE,
     check_unit,
     conversion,

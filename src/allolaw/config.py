@@ -9,6 +9,7 @@ from __future__ import annotations
 import copy
 import hashlib
 import json
+import re
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -45,27 +46,105 @@ def load_config(
     Raises
     ------
     UserError
-        If a file is missing, is not YAML, or breaks the schema; the message names the key.
+        If a file is missing, is not YAML, gives one key twice in a mapping, or breaks the
+        schema; the message names the key (and the line, with a hint, where YAML 1.1 read an
+        unquoted ``no`` as false or ``1e3`` as text).
     """
     if isinstance(paths, str | Path):
         paths = [paths]
     config: dict[str, Any] = {}
+    surprises: list[str] = []
     for path in map(Path, paths):
         if not path.is_file():
             msg = f"config file not found: {path}"
             raise UserError(msg)
-        try:
-            loaded = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
-        except yaml.YAMLError as err:
-            msg = f"{path}: not valid YAML: {err}"
-            raise UserError(msg) from err
+        loaded, found = _load_yaml(path)
+        surprises += found
         if not isinstance(loaded, dict):
             msg = f"{path}: a config file must be a mapping of keys to values"
             raise UserError(msg)
         _merge(config, loaded)
     for item in overrides or []:
         _apply_override(config, item)
-    return validate_config(config, source=" + ".join(str(p) for p in paths))
+    try:
+        return validate_config(config, source=" + ".join(str(p) for p in paths))
+    except UserError as err:
+        if not surprises:
+            raise
+        msg = f"{err}; note: {'; '.join(surprises[:3])}"
+        raise UserError(msg) from None
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """A SafeLoader that refuses duplicate keys and notes YAML 1.1 surprises.
+
+    YAML 1.1 (what PyYAML reads) takes unquoted ``yes``/``no``/``on``/``off`` as booleans and
+    ``1e3`` (no dot) as text; ``surprises`` collects such scalars with their line, for hints.
+    """
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self.surprises: list[str] = []
+
+
+_BOOL_WORDS = frozenset({"yes", "no", "on", "off", "y", "n"})
+_DOTLESS_EXPONENT = re.compile(r"[-+]?\d+[eE][-+]?\d+")
+
+
+def _mapping(loader: _StrictLoader, node: yaml.MappingNode) -> dict[Any, Any]:
+    lines: dict[Any, int] = {}
+    for key_node, _ in node.value:
+        if key_node.tag == "tag:yaml.org,2002:merge":
+            continue
+        key = loader.construct_object(key_node, deep=True)
+        line = key_node.start_mark.line + 1
+        if key in lines:
+            msg = (
+                f"{key_node.start_mark.name}, line {line}: key {key!r} is given twice (first "
+                f"on line {lines[key]}); YAML would silently keep the last one"
+            )
+            raise UserError(msg)
+        lines[key] = line
+    return loader.construct_mapping(node, deep=True)
+
+
+def _bool(loader: _StrictLoader, node: yaml.ScalarNode) -> bool:
+    value = loader.construct_yaml_bool(node)
+    if node.value.lower() in _BOOL_WORDS:
+        loader.surprises.append(
+            f"line {node.start_mark.line + 1}: YAML reads unquoted {node.value!r} as "
+            f"{str(value).lower()}; write '{node.value}' in quotes if you mean the word"
+        )
+    return value
+
+
+def _str(loader: _StrictLoader, node: yaml.ScalarNode) -> str:
+    value = loader.construct_yaml_str(node)
+    if node.style is None and _DOTLESS_EXPONENT.fullmatch(value):
+        loader.surprises.append(
+            f"line {node.start_mark.line + 1}: YAML reads {value!r} as text, not a number; "
+            f"write it with a dot ({value.lower().replace('e', '.0e', 1)}) or in full"
+        )
+    return value
+
+
+_StrictLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _mapping)
+_StrictLoader.add_constructor("tag:yaml.org,2002:bool", _bool)
+_StrictLoader.add_constructor("tag:yaml.org,2002:str", _str)
+
+
+def _load_yaml(path: Path) -> tuple[Any, list[str]]:
+    """Parse one YAML file with :class:`_StrictLoader`; return the data and its surprises."""
+    loader = _StrictLoader(path.read_text(encoding="utf-8"))
+    loader.name = str(path)
+    try:
+        data = loader.get_single_data() or {}
+    except yaml.YAMLError as err:
+        msg = f"{path}: not valid YAML: {err}"
+        raise UserError(msg) from err
+    finally:
+        loader.dispose()
+    return data, [f"{path}, {s}" for s in loader.surprises]
 
 
 def validate_config(config: Any, *, source: str = "config") -> dict[str, Any]:

@@ -30,8 +30,8 @@ from typing import Any
 
 import numpy as np
 
+from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 from allolaw.io import atomic_path, write_text
-from allolaw.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 
 __all__ = ["DEFAULT_SEED", "write_demo_data"]
 

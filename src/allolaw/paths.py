@@ -16,6 +16,7 @@ __all__ = [
     "hypotheses_path",
     "index_report_path",
     "ledger_path",
+    "manifest_path",
     "posterior_path",
     "prepared_path",
     "report_path",
@@ -32,6 +33,10 @@ def ledger_path(results: str | Path, dataset: str) -> Path:
 
 def prepared_path(results: str | Path, dataset: str) -> Path:
     return Path(results) / dataset / "prepared.json"
+
+
+def manifest_path(results: str | Path, dataset: str) -> Path:
+    return Path(results) / dataset / "manifest.json"
 
 
 def posterior_path(results: str | Path, dataset: str, model: str) -> Path:

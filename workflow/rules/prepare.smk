@@ -8,6 +8,7 @@ rule prepare_dataset:
         clean=f"{RESULTS}/{{dataset}}/clean.csv",
         ledger=f"{RESULTS}/{{dataset}}/ledger.csv",
         prepared=f"{RESULTS}/{{dataset}}/prepared.json",
+        manifest=f"{RESULTS}/{{dataset}}/manifest.json",
     log:
         f"{LOGS}/{{dataset}}/prepare.log",
     benchmark:

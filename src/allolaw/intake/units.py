@@ -5,9 +5,13 @@ have an offset. Oxygen consumption (``mL O2/h``, ``L O2/min`` …) is a volume p
 becomes power through an energy equivalent in J per mL O2. The ``O2`` token is read here (pint
 knows no oxygen); pint converts the volume per time that is left.
 
-Problems with a unit (unknown name, wrong kind of quantity, an offset unit where a factor is
-needed) raise :class:`allolaw.errors.UserError`; the caller passes ``where`` (file, line,
-column) so the message points at the cell.
+Only the short symbols listed in :data:`ABBREVIATIONS` are accepted; any other unit must be
+written as a full name pint knows (``grain``, ``megagram``, ``cubic_centimeter``). pint reads
+``gr`` as grain and ``Mg`` as megagram, which a table almost never means.
+
+Problems with a unit (unknown name, a symbol outside the list, wrong kind of quantity, an
+offset unit where a factor is needed) raise :class:`allolaw.errors.UserError`; the caller
+passes ``where`` (file, line, column) so the message points at the cell.
 """
 
 from __future__ import annotations
@@ -22,6 +26,7 @@ import pint
 from allolaw.errors import UserError
 
 __all__ = [
+    "ABBREVIATIONS",
     "DEFAULT_ENERGY_PER_ML_O2_JOULE",
     "QUANTITY_DIMENSIONS",
     "Conversion",
@@ -49,6 +54,21 @@ QUANTITY_DIMENSIONS: dict[str, str] = {
     "rate": "[substance] / [time]",
     "dimensionless": "[]",
 }
+
+# The short unit symbols accepted, by the kind of quantity they measure (config/README.md
+# lists them). Any other unit is written as a full name: `grain`, not `gr`.
+ABBREVIATIONS: dict[str, tuple[str, ...]] = {
+    "mass": ("g", "kg", "mg", "ug", "ng", "pg", "fg", "t", "lb", "oz"),
+    "length": ("m", "km", "cm", "mm", "um", "nm"),
+    "volume": ("L", "l", "dL", "cL", "mL", "ml", "uL", "ul", "nL", "nl", "pL", "fL"),
+    "time": ("s", "ms", "min", "h", "hr", "d"),
+    "power": ("W", "kW", "mW", "uW", "nW"),
+    "energy": ("J", "kJ", "mJ", "cal", "kcal"),
+    "amount": ("mol", "mmol", "umol", "nmol", "pmol", "fmol", "amol"),
+    "temperature": ("K", "degC", "degF"),
+}
+_ACCEPTED = frozenset(a for group in ABBREVIATIONS.values() for a in group)
+_TOKEN = re.compile(r"[A-Za-z_]+")
 
 _OXYGEN = re.compile(r"(?<![A-Za-z0-9])O(?:2|₂)(?![A-Za-z0-9])")
 _SUPERSCRIPTS = {"²": "**2", "³": "**3", "⁻¹": "**-1", "μ": "u", "µ": "u"}
@@ -263,6 +283,7 @@ def _parse(unit: Any, *, where: str) -> tuple[bool, pint.Unit]:
     except Exception as err:  # pint's parser raises many types on odd text (TokenError, …)
         msg = f"{_prefix(where)}cannot read unit {unit!r} ({type(err).__name__})"
         raise UserError(msg) from None
+    _check_symbols(unit, text, where)
     if oxygen and not parsed.is_compatible_with(ureg.Unit("mL/s")):
         msg = (
             f"{_prefix(where)}oxygen unit {unit!r} must be a volume of O2 per time "
@@ -270,6 +291,25 @@ def _parse(unit: Any, *, where: str) -> tuple[bool, pint.Unit]:
         )
         raise UserError(msg)
     return oxygen, parsed
+
+
+def _check_symbols(unit: str, text: str, where: str) -> None:
+    # A token is fine if it is a listed symbol or a full name (not pint's symbol for its unit).
+    for token in _TOKEN.findall(text):
+        if token in _ACCEPTED or token == "dimensionless":
+            continue
+        name = ureg.get_name(token)
+        symbol = ureg.get_symbol(token)
+        if len(token) >= 3 and token != symbol:
+            continue
+        near = [a for a in _ACCEPTED if a.lower() == token.lower()]
+        hint = f"; did you mean {near[0]!r}?" if near else ""
+        msg = (
+            f"{_prefix(where)}unit {unit!r}: {token!r} is not one of the accepted short "
+            f"symbols (pint would read it as {name}); write {name!r} in full if that is "
+            f"meant{hint}"
+        )
+        raise UserError(msg)
 
 
 def _magnitude(
