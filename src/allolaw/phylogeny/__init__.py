@@ -1,0 +1,1 @@
+"""Shared ancestry: trees read from Newick, and linear-time Gaussian densities on them."""
