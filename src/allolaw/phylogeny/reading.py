@@ -246,8 +246,9 @@ def match_tree(
 def _describe(node: treeswift.Node, is_leaf: bool) -> str:
     if is_leaf:
         return f"tip {node.label!r}"
-    first = next(n.label for n in node.traverse_leaves())
-    return f"the internal node whose first tip is {first!r}"
+    below = sorted(str(n.label) for n in node.traverse_leaves())
+    shown = ", ".join(repr(b) for b in below[:3]) + (", ..." if len(below) > 3 else "")
+    return f"the internal node over tips {shown}"
 
 
 def _line_col(text: str, pos: int) -> str:
