@@ -66,3 +66,17 @@ def test_gls_slope_equals_statsmodels_gls_with_tree_covariance(ultrametric):
     ref = sm.GLS(y, X, sigma=C).fit()
     np.testing.assert_allclose(beta, ref.params, rtol=0, atol=1e-8)
     np.testing.assert_allclose(cov, ref.normalized_cov_params, rtol=1e-8)
+
+
+def test_loo_in_chunks_equals_loo_at_once():
+    phylo = random_tree(30, seed=12)
+    rng = np.random.default_rng(12)
+    r = rng.normal(size=(7, 30))
+    sigma = rng.uniform(0.5, 2, size=7)
+    lam = rng.uniform(size=7)
+    whole = loo_log_density(r, sigma, lam, phylo, chunk=100)
+    np.testing.assert_allclose(loo_log_density(r, sigma, lam, phylo, chunk=3), whole,
+                               rtol=1e-14)
+    # a single draw with scalar σ and λ gives that draw's row
+    np.testing.assert_allclose(loo_log_density(r[4], sigma[4], lam[4], phylo), whole[4],
+                               rtol=1e-14)

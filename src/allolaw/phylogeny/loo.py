@@ -36,7 +36,7 @@ __all__ = ["loo_conditionals", "loo_log_density"]
 
 def loo_log_density(
     residuals: np.ndarray, sigma: np.ndarray | float, lam: np.ndarray | float,
-    phylogeny: Phylogeny,
+    phylogeny: Phylogeny, *, chunk: int = 256,
 ) -> np.ndarray:
     """Pointwise ``log p(r_i | r_−i)`` for ``r ~ N(0, σ²(λC + (1 − λ)D))``.
 
@@ -46,6 +46,8 @@ def loo_log_density(
         Shape (n_species,) or (n_draws, n_species): ``y − μ(θ)`` per posterior draw.
     sigma, lam
         Scalars or one per draw, shape (n_draws,).
+    chunk
+        Draws handled at once (memory: about 12 arrays of ``chunk × n_nodes`` floats).
 
     Returns
     -------
@@ -56,9 +58,17 @@ def loo_log_density(
     Bürkner, Gabry & Vehtari (2020), the multivariate normal case (see the module docstring).
     """
     r = np.asarray(residuals, float)
-    mean, var = loo_conditionals(r, lam, phylogeny)
-    s2 = np.asarray(sigma, float)[..., None] ** 2
-    return -0.5 * (np.log(2.0 * np.pi * s2 * var) + (r - mean) ** 2 / (s2 * var))
+    batch = r.reshape(-1, r.shape[-1])
+    k = batch.shape[0]
+    s2 = np.broadcast_to(np.asarray(sigma, float).reshape(-1, 1) ** 2, (k, 1))
+    lam_a = np.broadcast_to(np.asarray(lam, float).reshape(-1), (k,))
+    out = np.empty_like(batch)
+    for start in range(0, k, chunk):
+        rows = slice(start, start + chunk)
+        mean, var = loo_conditionals(batch[rows], lam_a[rows], phylogeny)
+        v = s2[rows] * var
+        out[rows] = -0.5 * (np.log(2.0 * np.pi * v) + (batch[rows] - mean) ** 2 / v)
+    return out.reshape(r.shape)
 
 
 def loo_conditionals(
