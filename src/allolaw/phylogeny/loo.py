@@ -114,15 +114,14 @@ def _upward(
     prec_up = np.zeros((k, m))
     info_up = np.zeros((k, m))
     for level in phylogeny.levels:
-        c, p = level.children, phylogeny.parent[level.children]
+        # children sorted by parent, so each parent's sums are one np.add.reduceat segment
+        order = np.argsort(level.slot, kind="stable")
+        c = level.children[order]
+        starts = np.searchsorted(level.slot[order], np.arange(len(level.parents)))
         v = var[:, c] + t[:, c]
-        prec_t = np.zeros((m, k))
-        info_t = np.zeros((m, k))
-        np.add.at(prec_t, p, (1.0 / v).T)
-        np.add.at(info_t, p, (mu[:, c] / v).T)
         ps = level.parents
-        prec_up[:, ps] = prec_t[ps].T
-        info_up[:, ps] = info_t[ps].T
+        prec_up[:, ps] = np.add.reduceat(1.0 / v, starts, axis=1)
+        info_up[:, ps] = np.add.reduceat(mu[:, c] / v, starts, axis=1)
         mu[:, ps] = info_up[:, ps] / prec_up[:, ps]
         var[:, ps] = 1.0 / prec_up[:, ps]
     vp = var + t
