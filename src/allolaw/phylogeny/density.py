@@ -17,6 +17,13 @@ the variance; the messages of a node's children multiply into one, with a consta
 that collects the density. Nodes are processed a level at a time (all nodes whose children
 are done), so the PyTensor graph has a fixed number of operations per level, not per node.
 
+Cost (``benchmarks/phylo_density.py``, JAX backend, density + gradient, random trees, on 2
+cores shared with other jobs, load about 11): 1k tips, 20 levels: 657 compiled nodes, 0.6 ms
+per call; 30k tips, 34 levels: 1,100 nodes, 12 ms per call. Compiling is the expensive part:
+PyTensor's rewriting took 15 s (1k) to 53 s (30k) and XLA's compilation 31 s to 102 s there.
+Passing the index arrays as shared variables instead of constants did not help (10k tips:
+22 s + 50 s against 17 s + 31 s).
+
 References
 ----------
 Felsenstein, J. (1973). Maximum-likelihood estimation of evolutionary trees from continuous
@@ -63,7 +70,8 @@ def log_density(residuals: Any, sigma: Any, lam: Any, phylogeny: Phylogeny) -> A
     Returns
     -------
     Scalar tensor: the exact log density; its gradient comes from PyTensor's autodiff.
-    The graph has about 15 operations per level of the tree, whatever the number of species.
+    The graph has a fixed set of operations per level of the tree, whatever the number of
+    species (with the gradient, about 30 compiled nodes per level).
 
     References
     ----------
