@@ -245,11 +245,13 @@ def _mcmc_break_pair(seed, change):
     fits = {}
     for name, spec in specs.items():
         model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=4.0)
+        prior_model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=4.0,
+                                  prior_only=True)
         with warnings.catch_warnings():
             # 2 short chains: convergence warnings are expected; the verdict is what is tested
             warnings.simplefilter("ignore")
             fits[name] = fit_model(model, chains=2, draws=300, tune=300, seed=seed,
-                                   prior_draws=20)
+                                   prior_draws=20, prior_model=prior_model)
     evidence = break_evidence(fits["break"], specs["break"])
     return judge_break(evidence, loo_difference(fits["break"], fits["straight"]))
 
