@@ -156,3 +156,18 @@ def test_crossing_one_half_counts_as_a_change():
     got, reasons = judge_changes(base, [_answer("3/4", {"3/4": 0.45, "2/3": 0.3})])
     assert got
     assert "crosses 0.5" in reasons[0]
+
+
+def test_taxon_sd_scaling_of_a_fixed_sd_changes_nothing():
+    from allolaw.testing.posteriors import conjugate_hierarchy_posterior
+
+    # the taxon SD is fixed in these draws (constant log prior): weights stay uniform
+    h = conjugate_hierarchy_posterior(seed=3, prior_mean=0.6, prior_sd=0.2)
+    spec = {"residuals": "normal", "priors": {"exponent": {"mean": 0.6, "sd": 0.2},
+                                              "exponent_sd": {"sd": 0.25}}}
+    out = power_scale_sensitivity(h.idata, spec, SETTINGS, alphas=(0.5, 2.0),
+                                  components=("taxon_sd",))
+    for a in out.scaled:
+        assert a.probs == pytest.approx(out.base.probs)
+        assert a.reliable
+    assert not out.changes

@@ -197,6 +197,8 @@ def power_scale_weights(log_density: np.ndarray, alpha: float) -> tuple[np.ndarr
     smoothing by :func:`arviz.psislw` (Vehtari et al. 2024).
     """
     log_ratio = (alpha - 1.0) * np.asarray(log_density, dtype=float).reshape(-1)
+    if np.ptp(log_ratio) == 0.0:  # a constant density (a fixed parameter): nothing changes
+        return np.full(log_ratio.size, 1.0 / log_ratio.size), -math.inf
     with warnings.catch_warnings():
         # ArviZ warns on high k; the k is returned and reported instead
         warnings.simplefilter("ignore", UserWarning)
