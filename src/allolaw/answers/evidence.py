@@ -32,6 +32,7 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
+from allolaw.diagnostics import pareto_k_threshold
 from allolaw.hypotheses import fit_parametric
 
 __all__ = ["BreakEvidence", "BreakVerdict", "LooDifference", "break_evidence",
@@ -69,7 +70,10 @@ class BreakEvidence:
 
 @dataclass(frozen=True)
 class LooDifference:
-    """elpd_loo(with break) − elpd_loo(without), its SE, and the high Pareto k counts."""
+    """elpd_loo(with break) − elpd_loo(without), its SE, and the high Pareto k counts.
+
+    High: above :func:`allolaw.diagnostics.pareto_k_threshold` of the fit's draw count.
+    """
 
     elpd_diff: float
     se: float
@@ -203,7 +207,11 @@ def loo_difference(with_break: az.InferenceData, without_break: az.InferenceData
         msg = "loo_difference: the two fits have different numbers of species"
         raise ValueError(msg)
     d = pointwise[0] - pointwise[1]
-    bad = [int(np.sum(~(np.asarray(lo.pareto_k.values) <= 0.7))) for lo in loos]
+    fits = (with_break, without_break)
+    bad = [int(np.sum(~(np.asarray(lo.pareto_k.values)
+                        <= pareto_k_threshold(fit.posterior.sizes["chain"]
+                                              * fit.posterior.sizes["draw"]))))
+           for lo, fit in zip(loos, fits, strict=True)]
     return LooDifference(elpd_diff=float(d.sum()), se=float(math.sqrt(d.size * d.var())),
                          n_bad_k_with=bad[0], n_bad_k_without=bad[1])
 
@@ -270,7 +278,7 @@ def judge_break(
         "unclear": "The evidence for a break is unclear: the Bayes factor and LOO disagree",
     }
     bad = loo.n_bad_k_with + loo.n_bad_k_without
-    caution = (f" LOO is unreliable for {bad} species (Pareto k > 0.7)." if bad else "")
+    caution = (f" LOO is unreliable for {bad} species (high Pareto k)." if bad else "")
     return BreakVerdict(verdict=verdict, bayes_says=bayes, loo_says=loo_says,
                         sentence=f"{heads[verdict]}. {numbers}.{caution}")
 
