@@ -171,3 +171,42 @@ def test_taxon_sd_scaling_of_a_fixed_sd_changes_nothing():
         assert a.probs == pytest.approx(out.base.probs)
         assert a.reliable
     assert not out.changes
+
+
+def _mcmc_taxa_fit(prior_sd, seed):
+    import warnings
+
+    from allolaw.fitting import fit_model
+    from allolaw.modeling import build_model
+    from allolaw.spec import parse_spec
+    from allolaw.testing.data import simulate_taxa
+
+    # invented data with known truth: 3 orders × 2 families × 4 species, exponent 0.75
+    sim = simulate_taxa(seed=41, species_per_taxon=4, sigma=0.2, exponent_sd=0.05)
+    spec = parse_spec({"taxa": {"levels": "all", "vary": ["intercept", "exponent"]},
+                       "priors": {"exponent": {"mean": 0.6, "sd": prior_sd}}}, name="t")
+    model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+    prior_model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0,
+                              prior_only=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # short chains: convergence warnings expected
+        idata = fit_model(model, chains=2, draws=1000, tune=500, seed=seed, prior_draws=20,
+                          prior_model=prior_model)
+    return idata, spec
+
+
+@pytest.mark.slow
+@pytest.mark.mcmc
+def test_reweighting_a_real_fit_matches_a_refit_with_the_doubled_prior_sd():
+    # reference: a second MCMC fit with the exponent prior SD doubled (α = 1/4)
+    base, spec = _mcmc_taxa_fit(0.08, 1)
+    refit, spec2 = _mcmc_taxa_fit(0.16, 2)
+    out = power_scale_sensitivity(base, spec, SETTINGS, alphas=(0.25,),
+                                  components=("exponent",))
+    (scaled,) = out.scaled
+    ref = power_scale_sensitivity(refit, spec2, SETTINGS, components=()).base
+    b = refit.posterior["exponent"].values.ravel()
+    assert scaled.reliable
+    assert abs(scaled.exponent_mean - b.mean()) < 4 * b.std() / math.sqrt(400)
+    for name, p in ref.probs.items():
+        assert scaled.probs[name] == pytest.approx(p, abs=0.05)
