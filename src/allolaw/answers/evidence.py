@@ -147,24 +147,7 @@ def break_evidence(
     diff = _flat(post["exponent_above"]) - below
     prior_mean, prior_sd = m_a - m_b, math.hypot(s_a, s_b)
 
-    log_post, method = math.nan, ""
-    if density != "parametric":
-        cond = _above_conditional(idata, spec_d, m_a, s_a)
-        problem = "not normal residuals or missing data" if cond is None else ""
-        if cond is not None:
-            mean_d, sd_d = cond[0] - below, cond[1]
-            problem = _self_check(diff, mean_d, sd_d)
-        if not problem:
-            log_post = float(special.logsumexp(stats.norm.logpdf(0.0, mean_d, sd_d))
-                             - math.log(diff.size))
-            method = _RB_METHOD
-        elif density == "conditional":
-            msg = f"no usable normal conditional of exponent_above: {problem}"
-            raise ValueError(msg)
-    if not method:
-        fitted = fit_parametric(diff, np.full(diff.size, 1.0 / diff.size))
-        log_post = float(fitted.logpdf(0.0))
-        method = _PARAM_METHOD
+    log_post, method = _log_density_at_zero(idata, spec_d, below, diff, (m_a, s_a), density)
     log_prior = float(stats.norm.logpdf(0.0, prior_mean, prior_sd))
     log_bf10 = log_prior - log_post
     log_odds = math.log(prior_prob_break) - math.log1p(-prior_prob_break) + log_bf10
@@ -284,6 +267,32 @@ def judge_break(
 
 
 # --- the conditional of exponent_above ----------------------------------------------------
+
+
+def _log_density_at_zero(
+    idata: az.InferenceData,
+    spec: dict[str, Any],
+    below: np.ndarray,
+    diff: np.ndarray,
+    above_prior: tuple[float, float],
+    density: str,
+) -> tuple[float, str]:
+    """Log posterior density of the difference at 0, and the method used."""
+    if density != "parametric":
+        cond = _above_conditional(idata, spec, *above_prior)
+        problem = "not normal residuals or missing data" if cond is None else ""
+        if cond is not None:
+            mean_d, sd_d = cond[0] - below, cond[1]
+            problem = _self_check(diff, mean_d, sd_d)
+        if not problem:
+            log_post = float(special.logsumexp(stats.norm.logpdf(0.0, mean_d, sd_d))
+                             - math.log(diff.size))
+            return log_post, _RB_METHOD
+        if density == "conditional":
+            msg = f"no usable normal conditional of exponent_above: {problem}"
+            raise ValueError(msg)
+    fitted = fit_parametric(diff, np.full(diff.size, 1.0 / diff.size))
+    return float(fitted.logpdf(0.0)), _PARAM_METHOD
 
 
 def _above_conditional(idata: az.InferenceData, spec: dict[str, Any], m_a: float, s_a: float

@@ -118,14 +118,15 @@ def power_scale_sensitivity(
     importance sampling. JMLR 25(72):1–58.
     """
     spec_d = spec.to_dict() if hasattr(spec, "to_dict") else dict(spec)
-    named = [(str(h["name"]), float(h["value"]), float(h.get("weight", 1.0)))
-             for h in settings.get("exponents", [])]
-    other_weight = float(settings.get("other_weight", 1.0))
-    delta = float(settings.get("interval_halfwidth", 0.03))
     prior = spec_d["priors"]["exponent"]
-    m0, s0 = float(prior["mean"]), float(prior["sd"])
-    est = exponent_density(idata, spec_d, _POPULATION)
-    draws = est.draws
+    ctx = _Context(
+        est=exponent_density(idata, spec_d, _POPULATION),
+        named=[(str(h["name"]), float(h["value"]), float(h.get("weight", 1.0)))
+               for h in settings.get("exponents", [])],
+        other_weight=float(settings.get("other_weight", 1.0)),
+        delta=float(settings.get("interval_halfwidth", 0.03)),
+        m0=float(prior["mean"]), s0=float(prior["sd"]), k_max=k_max, ess_min=ess_min,
+    )
     logs = log_prior_components(idata, spec_d)
     if "likelihood" in components and "log_likelihood" in idata.groups():
         ll = idata.log_likelihood["trait"]
@@ -134,29 +135,7 @@ def power_scale_sensitivity(
 
     def answer(component: str, alpha: float, weights: np.ndarray | None, k: float
                ) -> ScaledAnswer:
-        w = np.full(draws.size, 1.0 / draws.size) if weights is None else weights
-        scaled_sd = s0 / math.sqrt(alpha) if component == "exponent" else s0
-        pi = np.array([h[2] for h in named] + [other_weight])
-        if component == "named_weights":
-            pi = pi**alpha
-        log_bf = []
-        for _, v, _ in named:
-            if component == "likelihood":
-                log_post = float(est.parametric(w if weights is not None else None).logpdf(v))
-            else:
-                log_post = est.logpdf(v, weights, scaled_sd if component == "exponent" else None)
-            log_bf.append(log_post - float(stats.norm.logpdf(v, m0, scaled_sd)))
-        with np.errstate(divide="ignore"):
-            lp = np.log(pi) + np.append(log_bf, 0.0)
-        probs = np.exp(lp - special.logsumexp(lp))
-        labels = [h[0] for h in named] + [OTHER]
-        inside = {h[0]: float(np.sum(w * (np.abs(draws - h[1]) < delta))) for h in named}
-        ess = float(1.0 / np.sum(w**2))
-        return ScaledAnswer(component=component, alpha=float(alpha), pareto_k=k, ess=ess,
-                            reliable=bool(k <= k_max and ess >= ess_min),
-                            exponent_mean=float(np.sum(w * draws)),
-                            probs=dict(zip(labels, map(float, probs), strict=True)),
-                            interval_probs=inside, top=labels[int(np.argmax(probs))])
+        return _answer(ctx, component, alpha, weights, k)
 
     base = answer("", 1.0, None, -math.inf)
     scaled: list[ScaledAnswer] = []
@@ -258,6 +237,48 @@ def judge_changes(
         elif (p0 > 0.5) != (p > 0.5):
             reasons.append(f"{where}: P({base.top}) crosses 0.5 ({p0:.2f} to {p:.2f})")
     return bool(reasons), reasons
+
+
+@dataclass
+class _Context:
+    est: Any  # allolaw.hypotheses.DensityEstimate of the population exponent
+    named: list[tuple[str, float, float]]
+    other_weight: float
+    delta: float
+    m0: float
+    s0: float
+    k_max: float
+    ess_min: float
+
+
+def _answer(ctx: _Context, component: str, alpha: float, weights: np.ndarray | None,
+            k: float) -> ScaledAnswer:
+    """The headline quantities with ``component`` scaled by ``alpha`` (weights given)."""
+    draws = ctx.est.draws
+    w = np.full(draws.size, 1.0 / draws.size) if weights is None else weights
+    scaled_sd = ctx.s0 / math.sqrt(alpha) if component == "exponent" else ctx.s0
+    pi = np.array([h[2] for h in ctx.named] + [ctx.other_weight])
+    if component == "named_weights":
+        pi = pi**alpha
+    log_bf = []
+    for _, v, _ in ctx.named:
+        if component == "likelihood":
+            log_post = float(ctx.est.parametric(weights).logpdf(v))
+        else:
+            log_post = ctx.est.logpdf(v, weights, scaled_sd if component == "exponent"
+                                      else None)
+        log_bf.append(log_post - float(stats.norm.logpdf(v, ctx.m0, scaled_sd)))
+    with np.errstate(divide="ignore"):
+        lp = np.log(pi) + np.append(log_bf, 0.0)
+    probs = np.exp(lp - special.logsumexp(lp))
+    labels = [h[0] for h in ctx.named] + [OTHER]
+    inside = {h[0]: float(np.sum(w * (np.abs(draws - h[1]) < ctx.delta))) for h in ctx.named}
+    ess = float(1.0 / np.sum(w**2))
+    return ScaledAnswer(component=component, alpha=float(alpha), pareto_k=k, ess=ess,
+                        reliable=bool(k <= ctx.k_max and ess >= ctx.ess_min),
+                        exponent_mean=float(np.sum(w * draws)),
+                        probs=dict(zip(labels, map(float, probs), strict=True)),
+                        interval_probs=inside, top=labels[int(np.argmax(probs))])
 
 
 def _shift(got: ScaledAnswer, reference: ScaledAnswer, base: ScaledAnswer) -> ScaledAnswer:
