@@ -133,31 +133,8 @@ def power_scale_sensitivity(
         logs["likelihood"] = np.asarray(ll.sum([d for d in ll.dims if d not in ("chain", "draw")])
                                         .values, dtype=float).reshape(-1)
 
-    def answer(component: str, alpha: float, weights: np.ndarray | None, k: float
-               ) -> ScaledAnswer:
-        return _answer(ctx, component, alpha, weights, k)
-
-    base = answer("", 1.0, None, -math.inf)
-    scaled: list[ScaledAnswer] = []
-    for component in components:
-        if component == "likelihood":
-            if "likelihood" not in logs:
-                continue
-            reference = answer("likelihood", 1.0, None, -math.inf)
-        else:
-            reference = base
-        for alpha in alphas:
-            if component == "named_weights":
-                scaled.append(answer(component, alpha, None, -math.inf))
-                continue
-            if component not in logs:
-                continue
-            w, k = power_scale_weights(logs[component], alpha)
-            got = answer(component, alpha, w, k)
-            # the likelihood rows are compared with their own α = 1 (same density method)
-            if component == "likelihood":
-                got = _shift(got, reference, base)
-            scaled.append(got)
+    base = _answer(ctx, "", 1.0, None, -math.inf)
+    scaled = _scaled_answers(ctx, base, logs, components, alphas)
     changes, reasons = judge_changes(base, scaled, move=move)
     unreliable = tuple(f"{a.component} α={a.alpha:g} (Pareto k {a.pareto_k:.2f}, "
                        f"ESS {a.ess:.0f})"
@@ -279,6 +256,27 @@ def _answer(ctx: _Context, component: str, alpha: float, weights: np.ndarray | N
                         exponent_mean=float(np.sum(w * draws)),
                         probs=dict(zip(labels, map(float, probs), strict=True)),
                         interval_probs=inside, top=labels[int(np.argmax(probs))])
+
+
+def _scaled_answers(ctx: _Context, base: ScaledAnswer, logs: Mapping[str, np.ndarray],
+                    components: Sequence[str], alphas: Sequence[float]) -> list[ScaledAnswer]:
+    scaled: list[ScaledAnswer] = []
+    for component in components:
+        if component == "named_weights":
+            scaled += [_answer(ctx, component, a, None, -math.inf) for a in alphas]
+            continue
+        if component not in logs:
+            continue
+        # the likelihood rows are compared with their own α = 1 (same density method)
+        reference = (_answer(ctx, "likelihood", 1.0, None, -math.inf)
+                     if component == "likelihood" else base)
+        for alpha in alphas:
+            w, k = power_scale_weights(logs[component], alpha)
+            got = _answer(ctx, component, alpha, w, k)
+            if component == "likelihood":
+                got = _shift(got, reference, base)
+            scaled.append(got)
+    return scaled
 
 
 def _shift(got: ScaledAnswer, reference: ScaledAnswer, base: ScaledAnswer) -> ScaledAnswer:
