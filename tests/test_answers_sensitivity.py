@@ -210,3 +210,33 @@ def test_reweighting_a_real_fit_matches_a_refit_with_the_doubled_prior_sd():
     assert abs(scaled.exponent_mean - b.mean()) < 4 * b.std() / math.sqrt(400)
     for name, p in ref.probs.items():
         assert scaled.probs[name] == pytest.approx(p, abs=0.05)
+
+
+def test_likelihood_power_scaling_matches_the_closed_form():
+    # likelihood^α with normal residuals is the same model with residual SD σ/√α, so the
+    # scaled posterior is again the closed-form conjugate one (section 14.8 as above)
+    import xarray as xr
+
+    line = _line(8)
+    idata = line.idata
+    x = np.asarray(idata.constant_data["log_size_obs"].values)
+    y = np.asarray(idata.observed_data["trait"].values)
+    a = idata.posterior["intercept"].values[..., None]
+    b = idata.posterior["exponent"].values[..., None]
+    ll = stats.norm.logpdf(y, a + b * x, 0.5)
+    idata.add_groups(log_likelihood=xr.Dataset(
+        {"trait": (("chain", "draw", "species"), ll)},
+        coords={"chain": idata.posterior.chain, "draw": idata.posterior.draw}))
+    out = power_scale_sensitivity(idata, _spec(), SETTINGS, alphas=(0.5,),
+                                  components=("likelihood",))
+    (scaled,) = out.scaled
+    assert scaled.reliable
+    design = np.column_stack([np.ones_like(x), x])
+    prior_prec = np.diag([5.0**-2, PRIOR_SD**-2])
+    prec = prior_prec + 0.5 * design.T @ design / 0.5**2
+    cov = np.linalg.inv(prec)
+    mean = (cov @ (prior_prec @ np.array([0.0, PRIOR_MEAN]) + 0.5 * design.T @ y / 0.5**2))[1]
+    sd = math.sqrt(cov[1, 1])
+    assert abs(scaled.exponent_mean - mean) < 4 * sd / math.sqrt(scaled.ess)
+    exact = stats.norm.cdf(0.78, mean, sd) - stats.norm.cdf(0.72, mean, sd)
+    assert abs(scaled.interval_probs["3/4"] - exact) < 4 * math.sqrt(exact / scaled.ess) + 1e-3
