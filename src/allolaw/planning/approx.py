@@ -72,62 +72,81 @@ def analyse_tables(tables: SimulatedTables, analysis: Analysis) -> NormalMixture
         Weights, means and SDs with one row per table.
     """
     w, y = tables.log_size, tables.log_trait
-    e2 = tables.size_error_sd**2
-    if e2 > 0:
-        mu = w.mean(axis=1, keepdims=True)
-        total = w.var(axis=1, ddof=1, keepdims=True)
-        tau2 = np.maximum(total - e2, 0.01 * total)
-        lam = tau2 / (tau2 + e2)
-        m = mu + lam * (w - mu)
-        v = (lam * e2)[:, 0]
-    else:
-        m, v = w, np.zeros(w.shape[0])
-    stats = _Stats.build(m, y, tables.taxon, int(tables.taxon.max()) + 1, analysis)
+    stats = _Stats.build(w, y, tables.taxon, int(tables.taxon.max()) + 1, analysis,
+                         size_error_var=tables.size_error_sd**2)
     base = np.full(w.shape[0], tables.trait_error_sd**2)
-    mix = _integrate(stats, base, analysis)
-    if e2 > 0:
+    mix = _integrate(stats, base, np.zeros(w.shape[0]), analysis)
+    if stats.e2 > 0:
         second = np.sum(mix.weights * (mix.means**2 + mix.sds**2), axis=1)
-        mix = _integrate(stats, base + second * v, analysis)
+        mix = _integrate(stats, base, second, analysis)
     return mix
 
 
 @dataclass
 class _Stats:
-    S0: np.ndarray  # (R, T, 2, 2) per-taxon sums of [1, m] outer [1, m]
-    u0: np.ndarray  # (R, T, 2) sums of [1, m]·y
+    S0: np.ndarray  # (R, T, 2, 2) per-taxon sums of [1, w] outer [1, w]
+    u0: np.ndarray  # (R, T, 2) sums of [1, w]·y
     q0: np.ndarray  # (R, T) sums of y²
     n: int
     taxa: bool
     m0: np.ndarray  # (R, 2) prior means of (a, b)
     p0: np.ndarray  # (2,) prior precisions (0: flat)
     sigma0: np.ndarray  # (R,) starting residual SD
+    e2: float = 0.0  # size error variance per species
+    w_mean: np.ndarray | None = None  # (R,) μ̂, the mean measured log size
+    w_ss: np.ndarray | None = None  # (R,) Σ (w − μ̂)²
+    w_sd: np.ndarray | None = None  # (R,) SD of measured log size (size_sd prior scale)
 
     @classmethod
-    def build(cls, m: np.ndarray, y: np.ndarray, taxon: np.ndarray, n_taxa: int,
-              analysis: Analysis) -> _Stats:
+    def build(cls, w: np.ndarray, y: np.ndarray, taxon: np.ndarray, n_taxa: int,
+              analysis: Analysis, *, size_error_var: float = 0.0) -> _Stats:
         onehot = np.eye(n_taxa)[taxon]  # (n, T)
-        s = [onehot.sum(0)[None, :].repeat(m.shape[0], 0), m @ onehot, (m * m) @ onehot]
+        s = [onehot.sum(0)[None, :].repeat(w.shape[0], 0), w @ onehot, (w * w) @ onehot]
         S0 = np.stack([np.stack([s[0], s[1]], -1), np.stack([s[1], s[2]], -1)], -2)
-        u0 = np.stack([y @ onehot, (m * y) @ onehot], -1)
+        u0 = np.stack([y @ onehot, (w * y) @ onehot], -1)
         q0 = (y * y) @ onehot
-        if n_taxa == 1:
-            S0, u0, q0 = S0[:, :1], u0[:, :1], q0[:, :1]
         m_b, s_b = analysis.exponent_prior
         m0 = np.stack([np.median(y, axis=1), np.full(y.shape[0], m_b)], -1)
         p0 = np.array([analysis.intercept_prior_sd**-2, s_b**-2])
-        xc = m - m.mean(1, keepdims=True)
+        xc = w - w.mean(1, keepdims=True)
         slope = np.sum(xc * y, 1) / np.maximum(np.sum(xc * xc, 1), 1e-12)
         resid = y - y.mean(1, keepdims=True) - slope[:, None] * xc
         sigma0 = np.maximum(resid.std(1), 1e-3)
-        return cls(S0, u0, q0, m.shape[1], n_taxa > 1, m0, p0, sigma0)
+        out = cls(S0, u0, q0, w.shape[1], n_taxa > 1, m0, p0, sigma0, float(size_error_var))
+        if size_error_var > 0:
+            out.w_mean = w.mean(1)
+            out.w_ss = np.sum(xc * xc, 1)
+            out.w_sd = np.maximum(w.std(1, ddof=1), 1e-3)
+        return out
+
+    def size_terms(self, tau: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray,
+                                                    np.ndarray]:
+        """Sums on the scale of m = E[x | w], variance v of x | w and log p(w | μ̂, τ).
+
+        ``[1, m] = [1, w] A`` with ``A = [[1, μ(1 − λ)], [0, λ]]``, so the sums transform as
+        ``A' S A`` and ``A' u``.
+        """
+        lam = tau**2 / (tau**2 + self.e2)
+        a = np.zeros((tau.size, 1, 2, 2))
+        a[:, 0, 0, 0] = 1.0
+        a[:, 0, 0, 1] = self.w_mean * (1 - lam)
+        a[:, 0, 1, 1] = lam
+        at = np.swapaxes(a, -1, -2)
+        S = at @ self.S0 @ a
+        u = np.einsum("rtji,rtj->rti", a, self.u0)
+        total = tau**2 + self.e2
+        log_w = -0.5 * self.n * (_LOG2PI + np.log(total)) - 0.5 * self.w_ss / total
+        return S, u, lam * self.e2, log_w
 
 
-def _integrate(stats: _Stats, extra_var: np.ndarray, analysis: Analysis) -> NormalMixture:
+def _integrate(stats: _Stats, extra_var: np.ndarray, b2: np.ndarray, analysis: Analysis
+               ) -> NormalMixture:
+    """The mixture over the hyperparameter grid (``b2``: E[b²], for the size-error variance)."""
     free = _free_hyper(stats, analysis)
     r = stats.q0.shape[0]
 
     def logpost(theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        return _logpost(theta, free, stats, extra_var, analysis)
+        return _logpost(theta, free, stats, extra_var, analysis, b2=b2)
 
     if not free:
         _, mean, var = logpost(np.zeros((r, 0)))
@@ -157,30 +176,42 @@ def _free_hyper(stats: _Stats, analysis: Analysis) -> list[str]:
     free = ["intercept_sd", "exponent_sd"] if stats.taxa else []
     if analysis.scatter_fixed <= 0:
         free.append("scatter_sd")
+    if stats.e2 > 0:
+        free.append("size_sd")
     return free
 
 
 def _start(stats: _Stats, free: list[str]) -> np.ndarray:
     start = {"intercept_sd": np.log(0.3), "exponent_sd": np.log(0.05)}
-    cols = [np.full(stats.sigma0.size, start[k]) if k in start else np.log(stats.sigma0)
-            for k in free]
+    if stats.e2 > 0:
+        var_w = stats.w_sd**2
+        start["size_sd"] = 0.5 * np.log(np.maximum(var_w - stats.e2, 0.01 * var_w))
+    start["scatter_sd"] = np.log(stats.sigma0)
+    cols = [np.broadcast_to(start[k], stats.sigma0.shape) for k in free]
     return np.stack(cols, 1)
 
 
 def _logpost(theta: np.ndarray, free: list[str], stats: _Stats, extra_var: np.ndarray,
-             analysis: Analysis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+             analysis: Analysis, *, b2: np.ndarray | None = None
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Log posterior of θ (up to a constant), and the conditional mean and variance of b."""
     val = {k: np.exp(theta[:, i]) for i, k in enumerate(free)}
     sigma = val.get("scatter_sd", np.full(theta.shape[0], analysis.scatter_fixed))
     lp = np.zeros(theta.shape[0])
     scales = {"intercept_sd": analysis.intercept_sd_scale,
               "exponent_sd": analysis.exponent_sd_scale, "scatter_sd": analysis.scatter_sd_scale}
+    if "size_sd" in free:  # half-normal(2 × SD of measured log size), as in build_model
+        scales["size_sd"] = 2.0 * stats.w_sd
     for i, k in enumerate(free):  # half-normal prior in log coordinates (with Jacobian)
-        if scales[k] > 0:
+        if np.all(scales[k] > 0):
             lp += theta[:, i] - 0.5 * (val[k] / scales[k]) ** 2
-    noise = sigma**2 + extra_var
-    S = stats.S0 / noise[:, None, None, None]
-    u = stats.u0 / noise[:, None, None]
+    S0, u0, noise = stats.S0, stats.u0, sigma**2 + extra_var
+    if "size_sd" in free:
+        S0, u0, v, log_w = stats.size_terms(val["size_sd"])
+        lp += log_w
+        noise = noise + (0.0 if b2 is None else b2) * v
+    S = S0 / noise[:, None, None, None]
+    u = u0 / noise[:, None, None]
     q = stats.q0 / noise[:, None]
     lp -= 0.5 * stats.n * (_LOG2PI + np.log(noise))
     if stats.taxa:
@@ -194,7 +225,7 @@ def _logpost(theta: np.ndarray, free: list[str], stats: _Stats, extra_var: np.nd
         a = S - S @ m_inv @ S
         logdet_d = 2 * (theta[:, free.index("intercept_sd")]
                         + theta[:, free.index("exponent_sd")])
-        lp -= 0.5 * (stats.S0.shape[1] * logdet_d + logdet_m.sum(1))
+        lp -= 0.5 * (S.shape[1] * logdet_d + logdet_m.sum(1))
     else:
         c, g, a = q, u, S
     p0 = np.diag(stats.p0)

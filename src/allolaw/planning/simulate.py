@@ -109,7 +109,9 @@ def simulate_tables(design: Design, prior: DesignPrior, tables: np.ndarray, *, s
     rows: dict[str, list[Any]] = {k: [] for k in ("x", "w", "y", "draw")}
     for j in tables:
         rng = table_rng(seed, int(j))
-        draw = int(rng.integers(prior.size))
+        # one uniform per table whatever the number of draws (a point mass too), so the
+        # rest of the table's random numbers do not depend on the prior's size
+        draw = min(int(rng.random() * prior.size), prior.size - 1)
         x = rng.normal(0.0, size_sd, n)
         a_t = prior.intercept_sd[draw] * rng.standard_normal(n_taxa)
         b_t = prior.exponent[draw] + prior.exponent_sd[draw] * rng.standard_normal(n_taxa)
