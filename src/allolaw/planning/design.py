@@ -1,9 +1,10 @@
 """A study plan in plain words: the assumed truth, the candidate designs and the question.
 
-A plan is one entry of the ``plans:`` section of a batch config (keys described in
-``src/allolaw/planning/plans.schema.yaml``). :func:`read_plan` checks it and returns a
-:class:`Plan`; every candidate design is one combination of the values listed under
-``designs:`` (species count, number of taxa, size range, size error SD, replicates).
+A plan is one entry of the ``plans:`` section of a batch config (keys described, with
+defaults, under ``plans`` in ``src/allolaw/schemas/config.schema.yaml``). :func:`read_plan`
+checks it and returns a :class:`Plan`; every candidate design is one combination of the
+values listed under ``designs:`` (species count, number of taxa, size range, size error SD,
+replicates).
 """
 
 from __future__ import annotations
@@ -137,7 +138,7 @@ def read_plan(config: dict[str, Any], name: str, *, source: str = "config") -> P
     sims = _positive_int(raw.get("simulations", 500), f"{where}.simulations")
     chunks = _positive_int(raw.get("chunks", 1), f"{where}.chunks")
     check = int(raw.get("check_with_mcmc", 0))
-    return Plan(name=name, title=str(raw.get("title", name)), truth=truth, designs=designs,
+    return Plan(name=name, title=str(raw.get("title") or name), truth=truth, designs=designs,
                 question=question, analysis=analysis, simulations=sims,
                 seed=int(raw.get("seed", 1)), chunks=chunks, check_with_mcmc=check)
 
