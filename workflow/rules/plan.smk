@@ -39,6 +39,8 @@ rule combine_plan:
         html=f"{REPORTS}/plan_{{plan}}.html",
     log:
         f"{LOGS}/plans/{{plan}}/combine.log",
+    benchmark:
+        f"{LOGS}/benchmarks/plans/{{plan}}/combine.tsv"
     params:
         cli=ALLOLAW,
         opts=CLI_OPTS,
