@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 from scipy import integrate, stats
 
 from allolaw.planning.approx import _logpost, _Stats, analyse_tables
@@ -68,24 +69,26 @@ def test_one_sided_rejection_rate_equals_noncentral_t_power_with_estimated_sigma
     assert abs(rejected.mean() - power) < 3 * se
 
 
-def test_integrated_likelihood_matches_dense_gaussian_marginal() -> None:
+@pytest.mark.parametrize("curved", [False, True])
+def test_integrated_likelihood_matches_dense_gaussian_marginal(curved: bool) -> None:
     # The per-taxon Woodbury sums must give the same log marginal likelihood (up to a
-    # constant in θ) and the same posterior of b as dense algebra on the full covariance
-    # V = noise·I + Z D Z' (Lindley & Smith 1972, JRSS B 34:1-41, the linear-normal model).
+    # constant in θ) and the same posterior of (a, b[, c]) as dense algebra on the full
+    # covariance V = noise·I + Z D Z' (Lindley & Smith 1972, JRSS B 34:1-41, the
+    # linear-normal model); with `curved` a shared curvature column x² joins X (not Z).
     rng = np.random.default_rng(3)
     n, n_taxa = 15, 4
     taxon = np.arange(n) % n_taxa
     x = rng.normal(0, 1, n)
-    y = 0.2 + 0.7 * x + rng.normal(0, 0.3, n)
-    analysis = Analysis()
+    y = 0.2 + 0.7 * x + 0.1 * x**2 + rng.normal(0, 0.3, n)
+    analysis = Analysis(curvature=curved)
     stats_ = _Stats.build(x[None, :], y[None, :], taxon, n_taxa, analysis)
     free = ["intercept_sd", "exponent_sd", "scatter_sd"]
-    X = np.column_stack([np.ones(n), x])
+    X = np.column_stack([np.ones(n), x] + ([x**2] if curved else []))
     Z = np.zeros((n, 2 * n_taxa))
     Z[np.arange(n), 2 * taxon] = 1.0
     Z[np.arange(n), 2 * taxon + 1] = x
-    m0 = np.array([np.median(y), 1.0])
-    P0 = np.diag([1 / 25, 1.0])
+    m0 = np.array([np.median(y), 1.0] + ([0.0] if curved else []))
+    P0 = np.diag([1 / 25, 1.0] + ([1 / 0.25**2] if curved else []))
     diffs = []
     for s_a, s_b, sig in [(0.3, 0.1, 0.25), (0.8, 0.02, 0.4)]:
         theta = np.log([[s_a, s_b, sig]])
@@ -98,7 +101,8 @@ def test_integrated_likelihood_matches_dense_gaussian_marginal() -> None:
         Vi = np.linalg.inv(V)
         cov = np.linalg.inv(X.T @ Vi @ X + P0)
         mu = cov @ (X.T @ Vi @ y + P0 @ m0)
-        np.testing.assert_allclose([mean[0], var[0]], [mu[1], cov[1, 1]], rtol=1e-8)
+        np.testing.assert_allclose(mean[0], mu, rtol=1e-8)
+        np.testing.assert_allclose(var[0], np.diag(cov), rtol=1e-8)
     assert abs(diffs[0] - diffs[1]) < 1e-8
 
 

@@ -63,34 +63,54 @@ _MIN_CURV = 0.25  # floor on the Laplace precision of a log SD (its SD at most 2
 _LOG2PI = float(np.log(2 * np.pi))
 
 
-def analyse_tables(tables: SimulatedTables, analysis: Analysis) -> NormalMixture:
-    """Approximate posterior of the population exponent for every table.
+def analyse_tables(tables: SimulatedTables, analysis: Analysis, *,
+                   parameter: str = "exponent") -> NormalMixture:
+    """Approximate posterior of the population exponent (or curvature) for every table.
+
+    Parameters
+    ----------
+    tables
+        Simulated tables of one design.
+    analysis
+        Priors; with ``analysis.curvature`` the law has a shared curvature term
+        ``c·x²`` (as ``curvature: shared`` in a model spec), whose posterior
+        ``parameter="curvature"`` returns.
 
     Returns
     -------
     NormalMixture
         Weights, means and SDs with one row per table.
+
+    Notes
+    -----
+    With curvature and size error the regressor of c is ``E[x² | w] = m² + v`` and only the
+    exponent's share ``E[b²]·v`` of the extra variance is added: an approximation.
     """
+    index = {"exponent": 1, "curvature": 2}[parameter]
+    if index == 2 and not analysis.curvature:
+        msg = "the curvature posterior needs an analysis with a curvature term"
+        raise ValueError(msg)
     w, y = tables.log_size, tables.log_trait
     stats = _Stats.build(w, y, tables.taxon, int(tables.taxon.max()) + 1, analysis,
                          size_error_var=tables.size_error_sd**2)
     base = np.full(w.shape[0], tables.trait_error_sd**2)
-    mix = _integrate(stats, base, np.zeros(w.shape[0]), analysis)
+    weights, means, sds = _integrate(stats, base, np.zeros(w.shape[0]), analysis)
     if stats.e2 > 0:
-        second = np.sum(mix.weights * (mix.means**2 + mix.sds**2), axis=1)
-        mix = _integrate(stats, base, second, analysis)
-    return mix
+        mb, sb = means[..., 1], sds[..., 1]
+        second = np.sum(weights * (mb**2 + sb**2), axis=1)
+        weights, means, sds = _integrate(stats, base, second, analysis)
+    return NormalMixture(weights, means[..., index], sds[..., index])
 
 
 @dataclass
 class _Stats:
-    S0: np.ndarray  # (R, T, 2, 2) per-taxon sums of [1, w] outer [1, w]
-    u0: np.ndarray  # (R, T, 2) sums of [1, w]·y
+    S0: np.ndarray  # (R, T, p, p) per-taxon sums of f f' with f = [1, w] or [1, w, w²]
+    u0: np.ndarray  # (R, T, p) sums of f·y
     q0: np.ndarray  # (R, T) sums of y²
     n: int
     taxa: bool
-    m0: np.ndarray  # (R, 2) prior means of (a, b)
-    p0: np.ndarray  # (2,) prior precisions (0: flat)
+    m0: np.ndarray  # (R, p) prior means of (a, b[, c])
+    p0: np.ndarray  # (p,) prior precisions (0: flat)
     sigma0: np.ndarray  # (R,) starting residual SD
     e2: float = 0.0  # size error variance per species
     w_mean: np.ndarray | None = None  # (R,) μ̂, the mean measured log size
@@ -101,13 +121,18 @@ class _Stats:
     def build(cls, w: np.ndarray, y: np.ndarray, taxon: np.ndarray, n_taxa: int,
               analysis: Analysis, *, size_error_var: float = 0.0) -> _Stats:
         onehot = np.eye(n_taxa)[taxon]  # (n, T)
-        s = [onehot.sum(0)[None, :].repeat(w.shape[0], 0), w @ onehot, (w * w) @ onehot]
-        S0 = np.stack([np.stack([s[0], s[1]], -1), np.stack([s[1], s[2]], -1)], -2)
-        u0 = np.stack([y @ onehot, (w * y) @ onehot], -1)
+        feats = [np.ones_like(w), w] + ([w * w] if analysis.curvature else [])
+        f = np.stack(feats, -1)  # (R, n, p)
+        S0 = np.einsum("rnp,rnq,nt->rtpq", f, f, onehot)
+        u0 = np.einsum("rnp,rn,nt->rtp", f, y, onehot)
         q0 = (y * y) @ onehot
         m_b, s_b = analysis.exponent_prior
-        m0 = np.stack([np.median(y, axis=1), np.full(y.shape[0], m_b)], -1)
-        p0 = np.array([analysis.intercept_prior_sd**-2, s_b**-2])
+        means = [np.median(y, axis=1), np.full(y.shape[0], m_b)]
+        precs = [analysis.intercept_prior_sd**-2, s_b**-2]
+        if analysis.curvature:
+            means.append(np.full(y.shape[0], analysis.curvature_prior[0]))
+            precs.append(analysis.curvature_prior[1] ** -2)
+        m0, p0 = np.stack(means, -1), np.array(precs)
         xc = w - w.mean(1, keepdims=True)
         slope = np.sum(xc * y, 1) / np.maximum(np.sum(xc * xc, 1), 1e-12)
         resid = y - y.mean(1, keepdims=True) - slope[:, None] * xc
@@ -123,14 +148,21 @@ class _Stats:
                                                     np.ndarray]:
         """Sums on the scale of m = E[x | w], variance v of x | w and log p(w | μ̂, τ).
 
-        ``[1, m] = [1, w] A`` with ``A = [[1, μ(1 − λ)], [0, λ]]``, so the sums transform as
-        ``A' S A`` and ``A' u``.
+        ``[1, m] = [1, w] A`` with ``A = [[1, α], [0, λ]]``, α = μ(1 − λ) (with curvature
+        ``[1, m, m² + v] = [1, w, w²] A``, A's third column ``[α² + v, 2αλ, λ²]``), so the
+        sums transform as ``A' S A`` and ``A' u``.
         """
         lam = tau**2 / (tau**2 + self.e2)
-        a = np.zeros((tau.size, 1, 2, 2))
+        p = self.S0.shape[-1]
+        alpha = self.w_mean * (1 - lam)
+        a = np.zeros((tau.size, 1, p, p))
         a[:, 0, 0, 0] = 1.0
-        a[:, 0, 0, 1] = self.w_mean * (1 - lam)
+        a[:, 0, 0, 1] = alpha
         a[:, 0, 1, 1] = lam
+        if p == 3:
+            a[:, 0, 0, 2] = alpha**2 + lam * self.e2
+            a[:, 0, 1, 2] = 2 * alpha * lam
+            a[:, 0, 2, 2] = lam**2
         at = np.swapaxes(a, -1, -2)
         S = at @ self.S0 @ a
         u = np.einsum("rtji,rtj->rti", a, self.u0)
@@ -140,8 +172,11 @@ class _Stats:
 
 
 def _integrate(stats: _Stats, extra_var: np.ndarray, b2: np.ndarray, analysis: Analysis
-               ) -> NormalMixture:
-    """The mixture over the hyperparameter grid (``b2``: E[b²], for the size-error variance)."""
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Node weights (R, K) and the conditional means and SDs (R, K, p) of the coefficients.
+
+    ``b2`` is E[b²], for the size-error share of the residual variance.
+    """
     free = _free_hyper(stats, analysis)
     r = stats.q0.shape[0]
 
@@ -150,7 +185,7 @@ def _integrate(stats: _Stats, extra_var: np.ndarray, b2: np.ndarray, analysis: A
 
     if not free:
         _, mean, var = logpost(np.zeros((r, 0)))
-        return NormalMixture(np.ones((r, 1)), mean[:, None], np.sqrt(var)[:, None])
+        return np.ones((r, 1)), mean[:, None], np.sqrt(var)[:, None]
     theta = _start(stats, free)
     for _ in range(_NEWTON_STEPS):
         theta = _newton_step(theta, logpost)
@@ -169,7 +204,7 @@ def _integrate(stats: _Stats, extra_var: np.ndarray, b2: np.ndarray, analysis: A
         sds.append(np.sqrt(var))
     logw_arr = np.stack(logw, 1)
     weights = np.exp(logw_arr - special.logsumexp(logw_arr, axis=1, keepdims=True))
-    return NormalMixture(weights, np.stack(means, 1), np.stack(sds, 1))
+    return weights, np.stack(means, 1), np.stack(sds, 1)
 
 
 def _free_hyper(stats: _Stats, analysis: Analysis) -> list[str]:
@@ -214,15 +249,16 @@ def _logpost(theta: np.ndarray, free: list[str], stats: _Stats, extra_var: np.nd
     u = u0 / noise[:, None, None]
     q = stats.q0 / noise[:, None]
     lp -= 0.5 * stats.n * (_LOG2PI + np.log(noise))
-    if stats.taxa:
+    if stats.taxa:  # taxon deviations in intercept and exponent: the first two features
         d_inv = np.zeros((*S.shape[:1], 1, 2, 2))
         d_inv[:, 0, 0, 0] = val["intercept_sd"] ** -2
         d_inv[:, 0, 1, 1] = val["exponent_sd"] ** -2
-        m_inv, logdet_m = _inv2(d_inv + S)
-        mu = np.einsum("rtij,rtj->rti", m_inv, u)
-        c = q - np.sum(u * mu, -1)
-        g = u - np.einsum("rtij,rtj->rti", S, mu)
-        a = S - S @ m_inv @ S
+        s_xz, u_z = S[..., :, :2], u[..., :2]
+        m_inv, logdet_m = _inv2(d_inv + S[..., :2, :2])
+        mu = np.einsum("rtij,rtj->rti", m_inv, u_z)
+        c = q - np.sum(u_z * mu, -1)
+        g = u - np.einsum("rtij,rtj->rti", s_xz, mu)
+        a = S - s_xz @ m_inv @ np.swapaxes(s_xz, -1, -2)
         logdet_d = 2 * (theta[:, free.index("intercept_sd")]
                         + theta[:, free.index("exponent_sd")])
         lp -= 0.5 * (S.shape[1] * logdet_d + logdet_m.sum(1))
@@ -231,11 +267,14 @@ def _logpost(theta: np.ndarray, free: list[str], stats: _Stats, extra_var: np.nd
     p0 = np.diag(stats.p0)
     prec = a.sum(1) + p0
     h = g.sum(1) + stats.m0 * stats.p0
-    p_inv, logdet_p = _inv2(prec)
+    if prec.shape[-1] == 2:
+        p_inv, logdet_p = _inv2(prec)
+    else:
+        p_inv, logdet_p = np.linalg.inv(prec), np.linalg.slogdet(prec)[1]
     mean = np.einsum("rij,rj->ri", p_inv, h)
     quad = c.sum(1) + np.sum(stats.m0**2 * stats.p0, -1) - np.sum(h * mean, -1)
     lp += -0.5 * quad - 0.5 * logdet_p
-    return lp, mean[:, 1], p_inv[:, 1, 1]
+    return lp, mean, np.diagonal(p_inv, axis1=-2, axis2=-1)
 
 
 def _inv2(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -93,6 +93,8 @@ class Analysis:
     scatter_sd_scale: float = 1.0  # half-normal scale of sigma; 0: p(sigma) ∝ 1/sigma
     scatter_fixed: float = 0.0  # > 0: sigma known
     quadrature_points: int = 3
+    curvature: bool = False  # fit a shared curvature term
+    curvature_prior: tuple[float, float] = (0.0, 0.25)
 
 
 @dataclass(frozen=True)
