@@ -121,3 +121,26 @@ def test_size_error_intervals_cover_the_true_exponent_at_reliability_08() -> Non
     naive = np.sum(w * sims.log_trait, 1) / np.sum(w * w, 1)
     assert abs(covered.mean() - 0.9) < 3 * math.sqrt(0.09 / reps)
     assert naive.mean() < 0.85 * b
+
+
+def test_one_sided_curvature_detection_rate_equals_normal_power_with_known_sigma() -> None:
+    # Known σ, no taxa, no size error, flat priors on (a, b, c), fixed sizes: the posterior of
+    # c is N(ĉ, σ²·[(X'X)⁻¹]_cc), so "P(c ≤ 0 | y) < α" is the one-sided z-test of c = 0, with
+    # power 1 − Φ(z_{1−α} − c/se_c) (Cohen 1988, ch. 2 set-up, normal because σ is known).
+    n, sigma, c, reps = 20, 0.3, 0.06, 4000
+    x = np.linspace(-2.0, 2.0, n)
+    rng = np.random.default_rng(17)
+    y = 0.3 + 0.75 * x + c * x**2 + sigma * rng.standard_normal((reps, n))
+    sims = SimulatedTables(log_size=np.tile(x, (reps, 1)), log_trait=y,
+                           true_log_size=np.tile(x, (reps, 1)), taxon=np.zeros(n, int),
+                           truth={}, size_error_sd=0.0, trait_error_sd=0.0,
+                           table_ids=np.arange(reps))
+    analysis = _flat(scatter_fixed=sigma, curvature=True, curvature_prior=(0.0, math.inf))
+    post = analyse_tables(sims, analysis, parameter="curvature")
+    detected = post.cdf(0.0) < ALPHA
+    X = np.column_stack([np.ones(n), x, x**2])
+    se_c = sigma * math.sqrt(np.linalg.inv(X.T @ X)[2, 2])
+    power = stats.norm.sf(stats.norm.ppf(1 - ALPHA) - c / se_c)
+    se = math.sqrt(power * (1 - power) / reps)
+    assert 0.2 < power < 0.8
+    assert abs(detected.mean() - power) < 3 * se

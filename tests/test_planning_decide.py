@@ -5,7 +5,12 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from allolaw.planning.decide import named_probabilities, outcomes, true_hypothesis
+from allolaw.planning.decide import (
+    curvature_outcomes,
+    named_probabilities,
+    outcomes,
+    true_hypothesis,
+)
 from allolaw.planning.design import Analysis, Question
 from allolaw.planning.mixture import NormalMixture
 
@@ -45,3 +50,12 @@ def test_confident_answer_for_the_wrong_value_counts_as_wrong_not_success() -> N
     assert list(res["wrong"]) == [True, False]
     assert list(res["success"]) == [False, True]
     np.testing.assert_allclose(res["width90"], 2 * 1.6448536 * 0.005, rtol=1e-6)
+
+
+def test_confident_curvature_sign_on_a_straight_truth_is_a_false_detection() -> None:
+    post = NormalMixture(np.ones((3, 1)), np.array([[0.1], [0.1], [-0.1]]),
+                         np.array([[0.02], [0.02], [0.02]]))
+    res = curvature_outcomes(post, np.array([0.0, 0.05, 0.05]), QUESTION)
+    assert list(res["success"]) == [False, True, False]
+    assert list(res["wrong"]) == [True, False, True]
+    assert np.isnan(res["prob_true"][0])

@@ -127,3 +127,20 @@ def test_a_plan_with_an_unknown_key_names_the_key() -> None:
     config = _config(designs={"species_count": [10]})
     with pytest.raises(UserError, match=r"plans\.p\.designs: unknown key 'species_count'"):
         read_plan(config, "p")
+
+
+def test_curvature_plan_on_a_straight_truth_detects_a_sign_in_about_20_percent() -> None:
+    # Under a flat prior the one-sided posterior probability P(c > 0 | y) equals one minus
+    # the one-sided p-value (Casella & Berger 1987, JASA 82:106-111), uniform when c = 0; so
+    # with target 0.9 a sign is claimed in 2 × 0.1 = 20 % of straight-law studies. The
+    # normal(0, 0.25) curvature prior is nearly flat at this precision.
+    config = _config(simulations=400, question={"about": "curvature", "target": 0.9},
+                     designs={"species": [60], "taxa": [1], "size_range": [4.0]})
+    config["plans"]["p"]["truth"] = {"exponent": 0.75, "intercept_sd": 0.0,
+                                     "exponent_sd": 0.0, "scatter_sd": 0.2, "curvature": 0.0}
+    plan = read_plan(config, "p")
+    assert plan.analysis.curvature
+    table = summarise_tables(run_chunk(plan, DesignPrior.point(plan.truth)), plan)
+    rate = table["confident_wrong"].iloc[0]
+    assert table["assurance"].iloc[0] == 0.0
+    assert abs(rate - 0.2) < 3 * math.sqrt(0.2 * 0.8 / 400)

@@ -23,7 +23,7 @@ from scipy import special, stats
 from allolaw.planning.design import Analysis, Question
 from allolaw.planning.mixture import NormalMixture
 
-__all__ = ["named_probabilities", "outcomes", "true_hypothesis"]
+__all__ = ["curvature_outcomes", "named_probabilities", "outcomes", "true_hypothesis"]
 
 
 def named_probabilities(post: NormalMixture, question: Question, analysis: Analysis
@@ -82,6 +82,33 @@ def outcomes(post: NormalMixture, exponent: np.ndarray, question: Question,
         "top_prob": top_prob,
         "prob_true": probs[rows, truth],
         "interval_prob_true": interval,
+        "success": reached & (top == truth),
+        "wrong": reached & (top != truth),
+        "width90": post.quantile(0.95) - post.quantile(0.05),
+        "mean": post.mean(),
+    }
+
+
+def curvature_outcomes(post: NormalMixture, curvature: np.ndarray, question: Question
+                       ) -> dict[str, np.ndarray]:
+    """Per-table results when the question is the sign of the curvature.
+
+    Keys as :func:`outcomes`; ``truth_index`` is 0 (curving down), 1 (up) or 2 (straight),
+    ``top_index`` 0 or 1, ``prob_true`` P(true sign) (NaN for a straight truth).
+    """
+    p_up = 1.0 - post.cdf(0.0)
+    top = (p_up >= 0.5).astype(int)
+    top_prob = np.where(top == 1, p_up, 1.0 - p_up)
+    curvature = np.asarray(curvature, dtype=float)
+    truth = np.where(curvature > 0, 1, np.where(curvature < 0, 0, 2))
+    reached = top_prob >= question.target
+    prob_true = np.where(truth == 1, p_up, np.where(truth == 0, 1.0 - p_up, np.nan))
+    return {
+        "truth_index": truth,
+        "top_index": top,
+        "top_prob": top_prob,
+        "prob_true": prob_true,
+        "interval_prob_true": np.full(truth.size, np.nan),
         "success": reached & (top == truth),
         "wrong": reached & (top != truth),
         "width90": post.quantile(0.95) - post.quantile(0.05),

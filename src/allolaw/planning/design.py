@@ -23,11 +23,11 @@ AXES = ("species", "taxa", "size_range", "size_error_sd", "replicates")
 
 _TRUTH_KEYS = {"exponent", "intercept_sd", "exponent_sd", "scatter_sd", "curvature",
                "trait_error_sd", "from_fit"}
-_QUESTION_KEYS = {"exponents", "other_weight", "interval_halfwidth", "target", "goal"}
+_QUESTION_KEYS = {"about", "exponents", "other_weight", "interval_halfwidth", "target", "goal"}
 _PLAN_KEYS = {"title", "truth", "designs", "question", "analysis", "simulations", "seed",
               "chunks", "check_with_mcmc"}
 _ANALYSIS_KEYS = {"exponent_prior", "intercept_sd_scale", "exponent_sd_scale",
-                  "scatter_sd_scale", "quadrature_points"}
+                  "scatter_sd_scale", "quadrature_points", "curvature", "curvature_prior"}
 
 
 @dataclass(frozen=True)
@@ -50,9 +50,16 @@ class Truth:
 
 @dataclass(frozen=True)
 class Question:
-    """Which named exponents to tell apart, and how sure the answer must be."""
+    """Which named exponents to tell apart (or whether the law curves), and how sure.
+
+    ``about = "exponent"``: the named values are told apart. ``about = "curvature"``: the
+    answer is the sign of the curvature (curving up, c > 0, or down), reached when P(c > 0)
+    or P(c < 0) is at least ``target``; with a straight truth (c = 0) every such answer is a
+    confident wrong one.
+    """
 
     exponents: tuple[tuple[str, float, float], ...]  # (name, value, prior weight)
+    about: str = "exponent"
     other_weight: float = 1.0
     interval_halfwidth: float = 0.03
     target: float = 0.9  # posterior probability the answer must reach
@@ -136,7 +143,8 @@ def read_plan(config: dict[str, Any], name: str, *, source: str = "config") -> P
     question = _read_question(raw.get("question") or {}, config.get("hypotheses") or {},
                               f"{where}.question")
     designs = _read_designs(raw.get("designs") or {}, f"{where}.designs")
-    analysis = _read_analysis(raw.get("analysis") or {}, f"{where}.analysis")
+    analysis = _read_analysis(raw.get("analysis") or {}, f"{where}.analysis",
+                              curvature=question.about == "curvature")
     sims = _positive_int(raw.get("simulations", 500), f"{where}.simulations")
     chunks = _positive_int(raw.get("chunks", 1), f"{where}.chunks")
     check = int(raw.get("check_with_mcmc", 0))
@@ -157,14 +165,20 @@ def _read_truth(raw: dict[str, Any], where: str) -> Truth:
 
 def _read_question(raw: dict[str, Any], hypotheses: dict[str, Any], where: str) -> Question:
     _known(raw, _QUESTION_KEYS, where)
+    about = str(raw.get("about", "exponent"))
+    if about not in ("exponent", "curvature"):
+        msg = f"{where}.about: value {about!r}: use exponent or curvature"
+        raise UserError(msg)
     listed = raw.get("exponents", hypotheses.get("exponents"))
-    if not listed:
+    if not listed and about == "curvature":
+        listed = []
+    elif not listed:
         msg = f"{where}.exponents: list the named exponents to tell apart (name, value, weight)"
         raise UserError(msg)
     named = tuple((str(h["name"]), float(h["value"]), float(h.get("weight", 1.0)))
                   for h in listed)
     q = Question(
-        exponents=named,
+        exponents=named, about=about,
         other_weight=float(raw.get("other_weight", hypotheses.get("other_weight", 1.0))),
         interval_halfwidth=float(raw.get("interval_halfwidth",
                                          hypotheses.get("interval_halfwidth", 0.03))),
@@ -203,10 +217,13 @@ def _read_designs(raw: dict[str, Any], where: str) -> tuple[Design, ...]:
     return designs
 
 
-def _read_analysis(raw: dict[str, Any], where: str) -> Analysis:
+def _read_analysis(raw: dict[str, Any], where: str, *, curvature: bool) -> Analysis:
     _known(raw, _ANALYSIS_KEYS, where)
     prior = raw.get("exponent_prior", {"mean": 1.0, "sd": 1.0})
+    c_prior = raw.get("curvature_prior", {"mean": 0.0, "sd": 0.25})
     return Analysis(
+        curvature=bool(raw.get("curvature", False)) or curvature,
+        curvature_prior=(float(c_prior["mean"]), float(c_prior["sd"])),
         exponent_prior=(float(prior["mean"]), float(prior["sd"])),
         intercept_sd_scale=float(raw.get("intercept_sd_scale", 1.0)),
         exponent_sd_scale=float(raw.get("exponent_sd_scale", 0.25)),

@@ -19,14 +19,15 @@ import pandas as pd
 
 from allolaw.errors import UserError
 from allolaw.planning.approx import analyse_tables
-from allolaw.planning.decide import outcomes
+from allolaw.planning.decide import curvature_outcomes, outcomes
 from allolaw.planning.design import AXES, Plan
 from allolaw.planning.simulate import DesignPrior, simulate_tables
 
 __all__ = ["chunk_pairs", "combine_chunks", "run_chunk", "simulate_design", "smallest_designs",
            "summarise_tables"]
 
-TABLE_COLUMNS = ["design", "table", *AXES, "draw", "true_exponent", "truth_index",
+TABLE_COLUMNS = ["design", "table", *AXES, "draw", "true_exponent", "true_curvature",
+                 "truth_index",
                  "top_index", "top_prob", "prob_true", "interval_prob_true", "success",
                  "wrong", "width90", "mean"]
 
@@ -51,11 +52,16 @@ def simulate_design(plan: Plan, prior: DesignPrior, design_index: int,
     design = plan.designs[design_index]
     sims = simulate_tables(design, prior, tables, seed=plan.seed,
                            trait_error_sd=plan.truth.trait_error_sd)
-    post = analyse_tables(sims, plan.analysis)
-    res = outcomes(post, sims.truth["exponent"], plan.question, plan.analysis)
+    if plan.question.about == "curvature":
+        post = analyse_tables(sims, plan.analysis, parameter="curvature")
+        res = curvature_outcomes(post, sims.truth["curvature"], plan.question)
+    else:
+        post = analyse_tables(sims, plan.analysis)
+        res = outcomes(post, sims.truth["exponent"], plan.question, plan.analysis)
     frame = pd.DataFrame({"design": design_index, "table": sims.table_ids,
                           **{a: getattr(design, a) for a in AXES},
                           "draw": sims.truth["draw"], "true_exponent": sims.truth["exponent"],
+                          "true_curvature": sims.truth["curvature"],
                           **res})
     return frame[TABLE_COLUMNS]
 
@@ -101,8 +107,10 @@ def summarise_tables(rows: pd.DataFrame, plan: Plan) -> pd.DataFrame:
             rec[key], rec[f"{key}_se"] = p, float(np.sqrt(p * (1 - p) / n))
         for key, col in (("width90", "width90"), ("prob_true", "prob_true")):
             vals = grp[col].to_numpy(dtype=float)
-            rec[key] = float(vals.mean())
-            rec[f"{key}_se"] = float(vals.std(ddof=1) / np.sqrt(n)) if n > 1 else np.nan
+            vals = vals[np.isfinite(vals)]  # P(true sign) is NaN for a straight truth
+            m = vals.size
+            rec[key] = float(vals.mean()) if m else np.nan
+            rec[f"{key}_se"] = float(vals.std(ddof=1) / np.sqrt(m)) if m > 1 else np.nan
         rec["meets_goal"] = rec["assurance"] >= plan.question.goal
         out.append(rec)
     return pd.DataFrame(out)
