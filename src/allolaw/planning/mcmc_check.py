@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from allolaw.errors import UserError
 from allolaw.planning.approx import analyse_tables
 from allolaw.planning.decide import named_probabilities, true_hypothesis
 from allolaw.planning.design import Plan
@@ -57,7 +58,16 @@ def check_against_mcmc(plan: Plan, prior: DesignPrior, pairs: list[tuple[int, in
     R-hat, divergences and wall seconds. With ``cache`` (a folder), each MCMC result is kept
     in ``<cache>/<design>_<table>.json`` and read from there on a rerun (the fast side is
     always recomputed).
+
+    Raises
+    ------
+    UserError
+        For a plan whose question is the curvature (this check covers the exponent only).
     """
+    if plan.question.about != "exponent":
+        msg = (f"plan {plan.name}: check_with_mcmc covers the exponent question only; set it "
+               "to 0 for a curvature plan")
+        raise UserError(msg)
     rows = []
     for design_index, table in pairs:
         sims = simulate_tables(plan.designs[design_index], prior, np.array([table]),
