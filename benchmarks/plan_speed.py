@@ -52,13 +52,15 @@ def main() -> None:
     import numpy as np
 
     total = 0.0
+    cpu_start = time.process_time()
     for d, design in enumerate(plan.designs):
         start = time.perf_counter()
         simulate_design(plan, prior, d, np.arange(plan.simulations))
         took = time.perf_counter() - start
         total += took
         print(f"  {design.label()}: {took:.2f} s")
-    print(f"one process, design by design: {total:.1f} s")
+    print(f"one process, design by design: {total:.1f} s wall, "
+          f"{time.process_time() - cpu_start:.1f} s CPU (this process and its BLAS threads)")
     start = time.perf_counter()
     with ProcessPoolExecutor(2) as pool:
         parts = list(pool.map(_chunk, [(1, 2, args.simulations), (2, 2, args.simulations)]))
