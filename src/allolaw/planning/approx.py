@@ -125,7 +125,7 @@ class _Stats:
         f = np.stack(feats, -1)  # (R, n, p)
         S0 = np.einsum("rnp,rnq,nt->rtpq", f, f, onehot)
         u0 = np.einsum("rnp,rn,nt->rtp", f, y, onehot)
-        q0 = (y * y) @ onehot
+        q0 = np.einsum("rn,rn,nt->rt", y, y, onehot)
         m_b, s_b = analysis.exponent_prior
         means = [np.median(y, axis=1), np.full(y.shape[0], m_b)]
         precs = [analysis.intercept_prior_sd**-2, s_b**-2]
