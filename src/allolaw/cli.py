@@ -220,6 +220,9 @@ def _run_report(args: argparse.Namespace) -> None:
 
 
 def _run_plan(args: argparse.Namespace) -> None:
+    from allolaw.runtime import configure_job
+
+    configure_job(1)  # one thread per job (chunks run side by side) and the compile caches
     config = _config(args)
     from allolaw.planning.stage import combine_plan, run_plan_chunk
 
