@@ -15,6 +15,7 @@ include: "workflow/rules/prepare.smk"
 include: "workflow/rules/fit.smk"
 include: "workflow/rules/compare.smk"
 include: "workflow/rules/report.smk"
+include: "workflow/rules/plan.smk"
 
 
 rule all:

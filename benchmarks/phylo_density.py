@@ -24,7 +24,7 @@ import numpy as np
 import pytensor
 import pytensor.tensor as pt
 
-from allolaw.fitting import lighter_jax_rewrites
+from allolaw.model.compiling import lighter_jax_rewrites
 from allolaw.phylogeny.density import log_density, log_density_numpy
 from allolaw.phylogeny.simulate import random_tree
 

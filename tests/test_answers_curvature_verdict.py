@@ -138,9 +138,9 @@ ALLOWED = {"null": {NO_DIFFERENCES, ONE_CURVE, UNDECIDABLE},
 def _mcmc_verdict(scenario, seed):
     import warnings
 
-    from allolaw.fitting import fit_model
-    from allolaw.modeling import build_model
-    from allolaw.spec import parse_spec
+    from allolaw.model.sampling import fit_model
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_law
 
     sim = simulate_law(seed=seed, taxa=(8,), level_names=("genus",), species_per_taxon=8,

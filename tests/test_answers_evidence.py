@@ -228,9 +228,9 @@ def _mcmc_break_pair(seed, change):
     """Fit the allolaw breakpoint model and its matched straight model (same taxon terms)."""
     import warnings
 
-    from allolaw.fitting import fit_model
-    from allolaw.modeling import build_model
-    from allolaw.spec import parse_spec
+    from allolaw.model.sampling import fit_model
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_law
 
     # invented data with known truth: 3 groups × 20 species, log sizes N(4, 2²), break at 4

@@ -176,9 +176,9 @@ def test_taxon_sd_scaling_of_a_fixed_sd_changes_nothing():
 def _mcmc_taxa_fit(prior_sd, seed):
     import warnings
 
-    from allolaw.fitting import fit_model
-    from allolaw.modeling import build_model
-    from allolaw.spec import parse_spec
+    from allolaw.model.sampling import fit_model
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_taxa
 
     # invented data with known truth: 3 orders × 2 families × 4 species, exponent 0.75

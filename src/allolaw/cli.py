@@ -6,6 +6,8 @@
     allolaw compare --config config/config.yaml --dataset island_metabolism  [--report]
     allolaw report  --config config/config.yaml --dataset island_metabolism   (or --index)
     allolaw demo-data --out data/demo
+    allolaw plan    --config config/config.yaml --config config/plans.yaml --plan P
+                    [--chunk k/K | --combine]
 
 A problem the user can fix exits with status 2 and one message naming file, line, column and
 value; nothing else prints a traceback unless ``--debug`` is given.
@@ -153,6 +155,17 @@ def _build_parser() -> argparse.ArgumentParser:
     group.add_argument("--index", action="store_true", help="write reports/index.html")
     p.set_defaults(func=_run_report)
 
+    p = stage("plan", "Plan a study before the data: assurance of candidate designs.",
+              dataset=False)
+    p.add_argument("--plan", required=True, help="plan name from the config's plans:")
+    mode = p.add_mutually_exclusive_group()
+    mode.add_argument("--chunk", metavar="k/K",
+                      help="simulate chunk k of K only (write its chunk file)")
+    mode.add_argument("--combine", action="store_true",
+                      help="combine the plan's chunk files (its `chunks` of them, or --chunks)")
+    p.add_argument("--chunks", type=int, default=None, help="K for --combine")
+    p.set_defaults(func=_run_plan)
+
     p = sub.add_parser("demo-data", help="Write the invented demo datasets (seeded).",
                        description="Write the invented demo datasets (seeded).")
     p.add_argument("--out", default="data/demo", help="output folder (default data/demo)")
@@ -230,6 +243,36 @@ def _run_report(args: argparse.Namespace) -> None:
 
     path = render_index(config) if args.index else render_dataset_report(config, args.dataset)
     print(path)
+
+
+def _run_plan(args: argparse.Namespace) -> None:
+    from allolaw.runtime import configure_job
+
+    configure_job(1)  # one thread per job (chunks run side by side) and the compile caches
+    config = _config(args)
+    from allolaw.planning.stage import combine_plan, run_plan_chunk
+
+    if args.chunk:
+        k, n_chunks = _chunk_arg(args.chunk)
+        print(run_plan_chunk(config, args.plan, k, n_chunks))
+        return
+    if not args.combine:  # the whole plan in one process: one chunk, then combine it
+        run_plan_chunk(config, args.plan, 1, 1)
+        print(combine_plan(config, args.plan, 1))
+        return
+    print(combine_plan(config, args.plan, args.chunks))
+
+
+def _chunk_arg(text: str) -> tuple[int, int]:
+    try:
+        k, n_chunks = (int(v) for v in text.split("/"))
+    except ValueError:
+        msg = f"--chunk: value {text!r} is not of the form k/K (e.g. 2/4)"
+        raise UserError(msg) from None
+    if not 1 <= k <= n_chunks:
+        msg = f"--chunk: value {text!r}: k must lie between 1 and K"
+        raise UserError(msg)
+    return k, n_chunks
 
 
 def _run_demo(args: argparse.Namespace) -> None:

@@ -10,12 +10,12 @@ The prior of the difference is exact: ``exponent ~ N(m_b, s_b²)`` and ``exponen
 N(m_a, s_a²)`` are independent, so the difference is ``N(m_a − m_b, s_a² + s_b²)``.
 
 The posterior density at 0 is Rao–Blackwellised (Gelfand & Smith 1990), as
-:mod:`allolaw.hypotheses` does for named exponents: the law is linear in ``exponent_above``
+:mod:`allolaw.answers.hypotheses` does for named exponents: the law is linear in ``exponent_above``
 (regressor: the hinge) and its prior is normal, so with normal residuals its full conditional
 given everything else is normal; given the exponent below the break the difference is that
 conditional shifted. The average over draws of that normal density at 0 is the estimate. With
 Student-t residuals, or when the conditional fails its self-check, a parametric density
-(:func:`allolaw.hypotheses.fit_parametric`) fitted to the draws of the difference is used.
+(:func:`allolaw.answers.density.fit_parametric`) fitted to the draws of the difference is used.
 
 :func:`judge_break` says "supported" only when this evidence and the LOO comparison with a
 matched model without the break (same taxon terms) both favour the break.
@@ -32,15 +32,15 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
-from allolaw.diagnostics import pareto_k_threshold
-from allolaw.hypotheses import fit_parametric
+from allolaw.checks.convergence import pareto_k_threshold
+from allolaw.answers.density import fit_parametric
 
 __all__ = ["BreakEvidence", "BreakVerdict", "LooDifference", "break_evidence",
            "judge_break", "loo_difference"]
 
 _RB_METHOD = "Savage–Dickey, Rao–Blackwellised normal full conditional of exponent_above"
 _PARAM_METHOD = "Savage–Dickey, parametric density fitted to draws of the difference"
-# Self-check of the conditional (same bands as allolaw.hypotheses: common practice, no source).
+# Self-check of the conditional (same bands as allolaw.answers.hypotheses: common practice, no source).
 _SELF_CHECK_MEAN = 0.2
 _SELF_CHECK_VAR = 1.4
 
@@ -72,7 +72,7 @@ class BreakEvidence:
 class LooDifference:
     """elpd_loo(with break) − elpd_loo(without), its SE, and the high Pareto k counts.
 
-    High: above :func:`allolaw.diagnostics.pareto_k_threshold` of the fit's draw count.
+    High: above :func:`allolaw.checks.convergence.pareto_k_threshold` of the fit's draw count.
     """
 
     elpd_diff: float

@@ -11,7 +11,7 @@ P(|exponent − v| < δ) and the Savage–Dickey probability of each named value
 density at v changes with α where the exponent prior itself is scaled (``N(m, s²)^α`` is
 ``N(m, s²/α)``); the weights of the named values change analytically (``π_k^α``,
 renormalised). The posterior density at v is the Rao–Blackwellised estimate of
-:func:`allolaw.hypotheses.exponent_density`, reweighted (its conditional rebuilt with the
+:func:`allolaw.answers.density.exponent_density`, reweighted (its conditional rebuilt with the
 scaled exponent prior); under a scaled likelihood that conditional no longer holds, so a
 parametric density fitted to the weighted draws is used for that component, α = 1 included.
 
@@ -32,7 +32,7 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
-from allolaw.hypotheses import exponent_density
+from allolaw.answers.density import exponent_density
 
 __all__ = ["ScaledAnswer", "Sensitivity", "judge_changes", "log_prior_components",
            "power_scale_sensitivity", "power_scale_weights"]
@@ -218,7 +218,7 @@ def judge_changes(
 
 @dataclass
 class _Context:
-    est: Any  # allolaw.hypotheses.DensityEstimate of the population exponent
+    est: Any  # allolaw.answers.density.DensityEstimate of the population exponent
     named: list[tuple[str, float, float]]
     other_weight: float
     delta: float
