@@ -138,8 +138,8 @@ ALLOWED = {"null": {NO_DIFFERENCES, ONE_CURVE, UNDECIDABLE},
 def _mcmc_verdict(scenario, seed):
     import warnings
 
-    from allolaw.model.sampling import fit_model
     from allolaw.model.builder import build_model
+    from allolaw.model.sampling import fit_model
     from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_law
 

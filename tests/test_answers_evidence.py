@@ -228,8 +228,8 @@ def _mcmc_break_pair(seed, change):
     """Fit the allolaw breakpoint model and its matched straight model (same taxon terms)."""
     import warnings
 
-    from allolaw.model.sampling import fit_model
     from allolaw.model.builder import build_model
+    from allolaw.model.sampling import fit_model
     from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_law
 

@@ -176,8 +176,8 @@ def test_taxon_sd_scaling_of_a_fixed_sd_changes_nothing():
 def _mcmc_taxa_fit(prior_sd, seed):
     import warnings
 
-    from allolaw.model.sampling import fit_model
     from allolaw.model.builder import build_model
+    from allolaw.model.sampling import fit_model
     from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_taxa
 

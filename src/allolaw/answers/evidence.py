@@ -32,15 +32,16 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
-from allolaw.checks.convergence import pareto_k_threshold
 from allolaw.answers.density import fit_parametric
+from allolaw.checks.convergence import pareto_k_threshold
 
 __all__ = ["BreakEvidence", "BreakVerdict", "LooDifference", "break_evidence",
            "judge_break", "loo_difference"]
 
 _RB_METHOD = "Savage–Dickey, Rao–Blackwellised normal full conditional of exponent_above"
 _PARAM_METHOD = "Savage–Dickey, parametric density fitted to draws of the difference"
-# Self-check of the conditional (same bands as allolaw.answers.hypotheses: common practice, no source).
+# Self-check of the conditional (same bands as allolaw.answers.hypotheses; common practice,
+# no source).
 _SELF_CHECK_MEAN = 0.2
 _SELF_CHECK_VAR = 1.4
 

@@ -101,9 +101,9 @@ def _fit_mcmc(plan: Plan, sims: SimulatedTables, design_index: int, table: int, 
               models_dir: str | Path, sampler: dict[str, Any]) -> dict[str, Any]:
     import arviz as az
 
-    from allolaw.model.sampling import fit_model
     from allolaw.answers.hypotheses import compare_hypotheses
     from allolaw.model.builder import build_model
+    from allolaw.model.sampling import fit_model
     from allolaw.model.spec import load_spec
 
     design = plan.designs[design_index]
