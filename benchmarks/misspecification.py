@@ -1,6 +1,7 @@
 """Misspecification study: fits on data whose truth departs from the model (table + JSON).
 
-    .venv/bin/python benchmarks/misspecification.py --seeds 4 --out benchmarks/misspecification_before.json
+    .venv/bin/python benchmarks/misspecification.py --seeds 5 --jobs 2 \
+        --out benchmarks/misspecification_before.json
 
 Scenarios (``allolaw.testing.misspecified_study.SCENARIOS``): genera spread along the size axis
 with within-genus reliabilities 0.6-0.95 (``spread_reliability``), correlated size and trait
