@@ -12,7 +12,7 @@ log-size SD 1.5, within SD 0.3, error SD 0.1; ``wide_8x15``: 8 x 15, within 0.4,
 Per scenario, seed (1..N) and model spec, one fit records the bias of the population exponent
 (posterior mean - truth), whether its central 90% interval holds the truth, the coverage of
 the taxon exponents' 90% intervals, the posterior probabilities of 2/3, 3/4 and 1 (equal
-prior weights, ``allolaw.hypotheses.compare_hypotheses``) and which is largest, divergences
+prior weights, ``allolaw.answers.hypotheses.compare_hypotheses``) and which is largest, divergences
 and the largest R-hat. Each fit runs in its own worker process (JAX programs of many fits in
 one process exhaust JIT code memory); ``--jobs 2`` runs two at a time.
 """
@@ -42,7 +42,7 @@ def run_worker(args: argparse.Namespace) -> None:
     from allolaw.runtime import configure_job
 
     configure_job(1)
-    from allolaw.spec import load_spec
+    from allolaw.model.spec import load_spec
     from allolaw.testing.misspecified_study import fit_scenario
 
     scenario, seed, model = args.worker

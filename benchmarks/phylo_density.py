@@ -3,7 +3,7 @@
 For random trees (allolaw's seeded generator; invented) of 1k, 3k, 10k and 30k tips, the
 log density of N(0, σ²(λC + (1 − λ)D)) and its gradient with respect to the residuals, σ and
 λ are compiled with PyTensor's JAX backend (the mode nutpie uses in the fits, with the same
-lighter rewrites as allolaw.fitting) and, with ``--c``, PyTensor's default C backend.
+lighter rewrites as allolaw.model.compiling) and, with ``--c``, PyTensor's default C backend.
 Printed per size: levels of the tree, graph build and compile seconds, the compiled graph's
 node count, the median seconds per call (of 50 calls after a warm-up; JAX returns before it
 has finished, so each timed call converts every output to a NumPy array), and the NumPy

@@ -230,7 +230,7 @@ def test_study_records_every_fit_with_truth_and_consistent_scores(tmp_path):
     "within-genus slopes with the total reliability, giving posterior means 0.67-0.72 on "
     "wide_20x12 and 0.56-0.62 on wide_8x15 (benchmarks/misspecification_before.json)"))
 def test_fixed_designs_recover_three_quarters_with_the_improved_model():
-    from allolaw.spec import load_spec
+    from allolaw.model.spec import load_spec
     from allolaw.testing.misspecified_study import fit_scenario
 
     spec = load_spec(REPO / "models", "taxa_errors")

@@ -1,11 +1,11 @@
 """What each simulated table concludes about the named exponents.
 
-The probabilities are those of :mod:`allolaw.hypotheses`, for the population exponent: a named
+The probabilities are those of :mod:`allolaw.answers.hypotheses`, for the population exponent: a named
 value v is the point hypothesis ``exponent = v`` nested in the free model, with Bayes factor
 the Savage–Dickey ratio ``p(v | y) / p(v)`` (Dickey 1971) and posterior probability
 ``∝ weight · BF`` against ``other_weight`` for "another value"; the interval probability is
 ``P(|b − v| < δ)``. Here the posterior density is the approximate normal mixture of
-:mod:`allolaw.planning.approx` (in :mod:`allolaw.hypotheses` it is the average over draws of
+:mod:`allolaw.planning.approx` (in :mod:`allolaw.answers.hypotheses` it is the average over draws of
 the normal full conditional: the same kind of estimate), and the prior density is the normal
 exponent prior of the analysis.
 

@@ -36,7 +36,7 @@ __all__ = [
     "summarise_records",
 ]
 
-#: Named exponents ranked by :func:`allolaw.hypotheses.compare_hypotheses` (equal weights).
+#: Named exponents ranked by :func:`allolaw.answers.hypotheses.compare_hypotheses` (equal weights).
 NAMED_EXPONENTS = {
     "exponents": [{"name": "2/3", "value": 2.0 / 3.0, "weight": 1.0},
                   {"name": "3/4", "value": 0.75, "weight": 1.0},
@@ -80,7 +80,7 @@ def fit_scenario(
     seed ``seed``; the record is :func:`score_fit`'s plus the scenario, seed, sampler settings
     and wall seconds.
     """
-    from allolaw.modeling import build_model
+    from allolaw.model.builder import build_model
     from allolaw.testing.data import quick_sample
 
     start = time.perf_counter()
@@ -111,7 +111,7 @@ def score_fit(idata: Any, sim: Simulated, spec: Any, *, prob: float = 0.9) -> di
     """
     import arviz as az
 
-    from allolaw.hypotheses import compare_hypotheses
+    from allolaw.answers.hypotheses import compare_hypotheses
 
     post = idata.posterior
     draws = post["exponent"].values.reshape(-1)
