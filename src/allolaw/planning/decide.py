@@ -1,6 +1,7 @@
 """What each simulated table concludes about the named exponents.
 
-The probabilities are those of :mod:`allolaw.answers.hypotheses`, for the population exponent: a named
+The probabilities are those of :mod:`allolaw.answers.hypotheses`, for the population
+exponent: a named
 value v is the point hypothesis ``exponent = v`` nested in the free model, with Bayes factor
 the Savage–Dickey ratio ``p(v | y) / p(v)`` (Dickey 1971) and posterior probability
 ``∝ weight · BF`` against ``other_weight`` for "another value"; the interval probability is
