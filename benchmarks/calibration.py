@@ -57,7 +57,7 @@ def main() -> None:
     parser.add_argument("--replicates", type=int, default=100)
     parser.add_argument("--seed", type=int, default=20261202)
     parser.add_argument("--draws", type=int, default=500)
-    parser.add_argument("--tune", type=int, default=700)
+    parser.add_argument("--warmup", type=int, default=700)
     parser.add_argument("--bins", type=int, default=10, help="rank histogram bins")
     parser.add_argument("--per-process", type=int, default=10,
                         help="replicates fitted by one worker process before a fresh one starts")
@@ -67,7 +67,7 @@ def main() -> None:
     parser.add_argument("--records", help=argparse.SUPPRESS)
     args = parser.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
-    sampler = {"draws": args.draws, "tune": args.tune, "target_accept": 0.95}
+    sampler = {"draws": args.draws, "warmup": args.warmup, "target_acceptance": 0.95}
     spec = parse_spec(SBC_SPEC, name="sbc_taxa_errors_curved")
     if args.worker:
         sim = template_table()
@@ -89,8 +89,8 @@ def main() -> None:
             hi = min(lo + args.per_process, args.replicates)
             out = Path(tmp) / f"records_{lo}.json"
             cmd = [sys.executable, __file__, "--replicates", str(args.replicates),
-                   "--seed", str(args.seed), "--draws", str(args.draws), "--tune",
-                   str(args.tune), "--worker", str(lo), str(hi), "--records", str(out)]
+                   "--seed", str(args.seed), "--draws", str(args.draws), "--warmup",
+                   str(args.warmup), "--worker", str(lo), str(hi), "--records", str(out)]
             subprocess.run(cmd, check=True)
             records += json.loads(out.read_text(encoding="utf-8"))
             print(f"replicates {lo + 1}-{hi} of {args.replicates} done, "

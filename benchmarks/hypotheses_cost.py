@@ -23,7 +23,7 @@ def main() -> None:
     parser.add_argument("--model", default="taxa_errors")
     parser.add_argument("--chains", type=int, default=2)
     parser.add_argument("--draws", type=int, default=1000)
-    parser.add_argument("--tune", type=int, default=1000)
+    parser.add_argument("--warmup", type=int, default=1000)
     parser.add_argument("--repeats", type=int, default=3, help="timings of the hypotheses")
     args = parser.parse_args()
 
@@ -42,7 +42,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         config = load_config(REPO / "config" / "config.yaml", [
             f"results_dir={tmp}", f"sampler.chains={args.chains}",
-            f"sampler.draws={args.draws}", f"sampler.tune={args.tune}",
+            f"sampler.draws={args.draws}", f"sampler.warmup={args.warmup}",
             "sampler.backend=pymc",
         ])
         prepare_dataset(config, args.dataset)
@@ -59,7 +59,7 @@ def main() -> None:
     hyp_s = min(times)
     n_params = table.groupby(["parameter", "taxon"]).ngroups
     print(f"dataset {args.dataset}, model {args.model}: {args.chains} chains x {args.draws} "
-          f"draws (+{args.tune} tune), backend pymc, 1 core")
+          f"draws (+{args.warmup} warm-up), backend pymc, 1 core")
     print(f"fit wall time (build + sample + all groups + write): {fit_s:8.2f} s")
     print(f"hypotheses wall time (best of {args.repeats}):            {hyp_s:8.2f} s  "
           f"(all: {', '.join(f'{t:.2f}' for t in times)})")

@@ -16,7 +16,7 @@ Each fit runs in its own subprocess (clean peak memory, honest import and compil
 baseline is what a user would write by hand: one non-centred hierarchical PyMC model with a
 latent true size per species, sampled with ``pm.sample()`` defaults. allolaw's fit is
 ``model.builder.build_model`` + ``model.sampling.fit_model`` with the batch defaults (4 chains,
-1000 + 1000, target_accept 0.9, ``backend=auto`` unless ``--backends`` says otherwise).
+1000 + 1000, target acceptance 0.9, ``backend=auto`` unless ``--backends`` says otherwise).
 
 Columns: wall, compile and sampling seconds; min bulk and tail ESS over every element of every
 posterior variable; min bulk ESS per sampling second and per wall second; divergences; max
@@ -205,7 +205,7 @@ def _work(job: dict[str, Any]) -> dict[str, Any]:
         model = build_model(data, spec, levels=levels, log_reference_size=log_ref)
         prior_model = build_model(data, spec, levels=levels, log_reference_size=log_ref,
                                   prior_only=True)
-        idata = fit_model(model, chains=4, draws=draws, tune=draws, target_accept=0.9,
+        idata = fit_model(model, chains=4, draws=draws, warmup=draws, target_acceptance=0.9,
                           seed=SEED, backend=job["backend"], threads=job["threads"],
                           prior_draws=100, prior_model=prior_model)
         wall = time.perf_counter() - start

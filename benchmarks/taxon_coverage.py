@@ -28,7 +28,7 @@ DATASET = "island_metabolism"
 LEVEL = "family"
 
 
-def fit_one(seed: int, model: str, draws: int, tune: int) -> dict:
+def fit_one(seed: int, model: str, draws: int, warmup: int) -> dict:
     """Generate the demo data with ``seed``, fit ``model`` to the island survey, score it."""
     import numpy as np
 
@@ -53,7 +53,7 @@ def fit_one(seed: int, model: str, draws: int, tune: int) -> dict:
     spec = load_spec(REPO / "models", model)
     fit = quick_sample(build_model(data, spec, levels=levels,
                                    log_reference_size=float(prepared["log_reference_size"])),
-                       seed=seed, draws=draws, tune=tune, chains=2, target_accept=0.9)
+                       seed=seed, draws=draws, warmup=warmup, chains=2, target_acceptance=0.9)
     post = fit.posterior[f"taxon_exponent__{LEVEL}"]
     labels = [str(v) for v in post[LEVEL].values]
     values = post.values.reshape(-1, len(labels))
@@ -69,7 +69,7 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=10, help="datasets (seeds 1..N)")
     parser.add_argument("--model", default="taxa_errors")
     parser.add_argument("--draws", type=int, default=500)
-    parser.add_argument("--tune", type=int, default=700)
+    parser.add_argument("--warmup", type=int, default=700)
     parser.add_argument("--out", default="benchmarks/taxon_coverage.json")
     parser.add_argument("--worker", type=int, help=argparse.SUPPRESS)
     parser.add_argument("--record", help=argparse.SUPPRESS)
@@ -79,7 +79,7 @@ def main() -> None:
         from allolaw.runtime import configure_job
 
         configure_job(1)
-        record = fit_one(args.worker, args.model, args.draws, args.tune)
+        record = fit_one(args.worker, args.model, args.draws, args.warmup)
         Path(args.record).write_text(json.dumps(record), encoding="utf-8")
         return
     start = time.perf_counter()
@@ -89,7 +89,7 @@ def main() -> None:
             out = Path(tmp) / f"{seed}.json"
             subprocess.run([sys.executable, __file__, "--worker", str(seed), "--record",
                             str(out), "--model", args.model, "--draws", str(args.draws),
-                            "--tune", str(args.tune)], check=True)
+                            "--warmup", str(args.warmup)], check=True)
             records.append(json.loads(out.read_text(encoding="utf-8")))
             hits = sum(sum(r["inside"]) for r in records)
             total = sum(len(r["inside"]) for r in records)
@@ -103,7 +103,7 @@ def main() -> None:
     print(f"coverage of 90% intervals of {LEVEL} exponents ({args.model}): {share:.3f} "
           f"({hits} of {total}; binomial SE {se:.3f}; target 0.85-0.95)")
     out = {"model": args.model, "level": LEVEL, "coverage": share, "intervals": total,
-           "hits": hits, "records": records, "draws": args.draws, "tune": args.tune,
+           "hits": hits, "records": records, "draws": args.draws, "warmup": args.warmup,
            "seconds": time.perf_counter() - start}
     Path(args.out).write_text(json.dumps(out, indent=2) + "\n", encoding="utf-8")
     print(f"wrote {args.out}")

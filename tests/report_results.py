@@ -37,7 +37,7 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
             "results_dir": str(root / "results"),
             "reports_dir": str(root / "reports"),
             "models_dir": str(REPO / "models"),
-            "sampler": {"chains": 2, "draws": 300, "tune": 300, "seed": 11},
+            "sampler": {"chains": 2, "draws": 300, "warmup": 300, "seed": 11},
             "datasets": {
                 "demo": {
                     "title": "Invented test dataset & <b>bold</b> title",
@@ -144,12 +144,12 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
     hyp.append(_hyp_row(CURVED, "", "", "metabolic law", 0.75, "point", 0.7123))
     pd.DataFrame(hyp).to_csv(res / "hypotheses.csv", index=False)
     comp = pd.DataFrame([
-        {"dataset": "demo", "model": PRIMARY, "rank": 0, "elpd_loo": -12.345, "se": 3.21,
-         "elpd_diff": 0.0, "dse": 0.0, "p_loo": 6.78, "stacking_weight": 0.83, "n_bad_k": 0,
-         "warning": False},
-        {"dataset": "demo", "model": CURVED, "rank": 1, "elpd_loo": -13.9, "se": 3.4,
-         "elpd_diff": 1.555, "dse": 0.91, "p_loo": 7.9, "stacking_weight": 0.17, "n_bad_k": 1,
-         "warning": True},
+        {"dataset": "demo", "model": PRIMARY, "place": 1, "elpd_loo": -12.345,
+         "elpd_loo_se": 3.21, "elpd_gap_to_best": 0.0, "elpd_gap_se": 0.0, "p_loo": 6.78,
+         "stacking_weight": 0.83, "n_high_pareto_k": 0, "loo_caution": False},
+        {"dataset": "demo", "model": CURVED, "place": 2, "elpd_loo": -13.9,
+         "elpd_loo_se": 3.4, "elpd_gap_to_best": 1.555, "elpd_gap_se": 0.91, "p_loo": 7.9,
+         "stacking_weight": 0.17, "n_high_pareto_k": 1, "loo_caution": True},
     ])
     comp.to_csv(res / "comparison.csv", index=False)
     # Layouts as allolaw.answers writes them (audit_curvature, summarise_breakpoint).
@@ -161,8 +161,8 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
         "curvature": {"mean": 0.021, "sd": 0.005, "median": 0.021, "q05": 0.012,
                       "q95": 0.029},
         "p_curvature_positive": 0.999,
-        "loo_differences": [{"model_a": CURVED, "model_b": PRIMARY, "elpd_diff": -1.555,
-                             "se": 0.91, "better": PRIMARY}],
+        "loo_differences": [{"model_a": CURVED, "model_b": PRIMARY, "elpd_difference": -1.555,
+                             "elpd_difference_se": 0.91, "better": PRIMARY}],
         "check_verdicts": {"linear": "pass", "curved": "fail"},
         "verdict": "Little of the spread of taxon exponents is explained by curvature: the "
                    "taxa differ in their own right. Adding a shared curvature term lowers the "
@@ -235,7 +235,8 @@ def fake_fit(clean: pd.DataFrame, model: str, rng: np.random.Generator) -> az.In
     attrs = {
         "allolaw_version": "0.1.0", "dataset": "demo", "model": model,
         "spec": json.dumps(spec), "backend": "pymc", "seed": 1234,
-        "sampler": json.dumps({"chains": 2, "draws": 200, "tune": 200, "target_accept": 0.9}),
+        "sampler": json.dumps({"chains": 2, "draws": 200, "warmup": 200,
+                               "target_acceptance": 0.9}),
         "data_sha256": "cd" * 32, "versions": json.dumps({"pymc": "5.28.5"}),
         "log_reference_size": math.log(100.0), "refit": "false", "wall_seconds": 1.5,
     }

@@ -1,4 +1,4 @@
-"""Model comparison by PSIS-LOO: ranks, elpd against ArviZ, Pareto k counts."""
+"""Model comparison by PSIS-LOO: places, elpd against ArviZ, Pareto k counts, column names."""
 
 import arviz as az
 import pytest
@@ -11,7 +11,8 @@ def test_loo_ranks_the_calibrated_model_above_a_too_narrow_one():
     fits = {"right": line_posterior(seed=1), "narrow": line_posterior(seed=1, spread_factor=0.4)}
     table = compare_models(fits, verdicts={"right": "pass"})
     assert table["model"].tolist() == ["right", "narrow"]
-    assert table["elpd_diff"].iloc[1] > 0
+    assert table["elpd_gap_to_best"].iloc[1] > 0
+    assert table["place"].tolist() == [1, 2]  # 1 = best
     # stacking weights are a probability vector over models (Yao et al. 2018, BA 13:917)
     assert table["stacking_weight"].sum() == pytest.approx(1.0)
     assert (table["note"] == STACKING_NOTE).all()
@@ -30,6 +31,20 @@ def test_high_pareto_k_is_counted_and_warned():
     table = compare_models({"clean": line_posterior(seed=3),
                             "outlier": line_posterior(seed=3, outlier_sd=12)})
     row = table.set_index("model").loc["outlier"]
-    assert row["n_bad_k"] >= 1
-    assert "Pareto k" in row["warning"]
-    assert table.set_index("model").loc["clean", "n_bad_k"] == 0
+    assert row["n_high_pareto_k"] >= 1
+    assert "Pareto k" in row["loo_caution"]
+    assert table.set_index("model").loc["clean", "n_high_pareto_k"] == 0
+
+
+def test_comparison_columns_are_named_in_our_words_and_loo_terms():
+    # elpd_loo and p_loo: terms of the method (Vehtari, Gelman & Gabry 2017, Stat. Comput.
+    # 27:1413); the rest our own names, none of ArviZ's (rank, se, elpd_diff, dse, warning)
+    table = compare_models({"a": line_posterior(seed=4), "b": line_posterior(seed=5)})
+    assert list(table.columns) == [
+        "dataset", "model", "place", "elpd_loo", "elpd_loo_se", "elpd_gap_to_best",
+        "elpd_gap_se", "p_loo", "stacking_weight", "n_high_pareto_k", "loo_caution",
+        "check_verdict", "note",
+    ]
+    best = table.set_index("place").loc[1]
+    assert best["elpd_gap_to_best"] == 0.0
+    assert best["elpd_gap_se"] == 0.0

@@ -41,9 +41,9 @@ def test_compare_dataset_writes_every_output_and_says_what_does_not_apply(tmp_pa
     comp = pd.read_csv(paths.comparison_path(results, "toy"))
     assert comp["model"].tolist() == ["pooled", "narrow", "never_fitted"]
     assert comp.set_index("model").loc["narrow", "check_verdict"] == "fail"
-    assert comp.set_index("model").loc["never_fitted", "warning"] == "no fit"
-    assert comp["rank"].iloc[1] == 1  # written as an integer, not 1.0
-    assert ",1,"  in paths.comparison_path(results, "toy").read_text().splitlines()[2]
+    assert comp.set_index("model").loc["never_fitted", "loo_caution"] == "no fit"
+    assert comp["place"].iloc[1] == 2  # written as an integer, not 2.0
+    assert ",2,"  in paths.comparison_path(results, "toy").read_text().splitlines()[2]
     hyp = pd.read_csv(paths.hypotheses_path(results, "toy"))
     assert set(hyp["model"]) == {"pooled", "narrow"}
     assert (hyp["dataset"] == "toy").all()

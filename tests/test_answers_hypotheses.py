@@ -153,6 +153,7 @@ def test_table_has_the_contract_columns_and_one_other_row_per_parameter():
     assert list(table.columns[: len(COLUMNS)]) == COLUMNS
     others = table[table["kind"] == "other"]
     assert len(others) == 5  # population + 4 taxa
+    assert set(others["hypothesis"]) == {"another value"}  # one wording, as in the report
     assert set(table.loc[table["parameter"] == "taxon_exponent", "level"]) == {"group"}
 
 
@@ -256,7 +257,7 @@ def test_demo_datasets_give_the_true_exponent_the_highest_probability(tmp_path, 
     truth = json.loads((repo / "data" / "demo" / "truth.json").read_text())[dataset]
     config = load_config(repo / "config" / "config.yaml", [
         f"results_dir={tmp_path}", "sampler.chains=2", "sampler.draws=500",
-        "sampler.tune=500", "sampler.backend=pymc"])
+        "sampler.warmup=500", "sampler.backend=pymc"])
     prepare_dataset(config, dataset)
     idata = fit_dataset_model(config, dataset, model)
     table = compare_hypotheses(idata, load_spec(config["models_dir"], model),

@@ -40,8 +40,8 @@ def test_divergent_fit_is_refitted_once_and_the_refit_is_recorded(tmp_path, monk
     post = _write_fit(config, line_posterior(seed=11, n_divergent=12))
     calls = []
 
-    def fake_fit(config, dataset, model, *, threads=1, target_accept=None):
-        calls.append(target_accept)
+    def fake_fit(config, dataset, model, *, threads=1, target_acceptance=None):
+        calls.append(target_acceptance)
         time.sleep(0.05)
         idata = line_posterior(seed=12)
         idata.to_netcdf(str(post))
@@ -57,7 +57,7 @@ def test_divergent_fit_is_refitted_once_and_the_refit_is_recorded(tmp_path, monk
     assert report["refit"]["after"]["n_divergent"] == 0
     assert "refitted once" in report["findings"][0]
     recorded = json.loads(az.from_netcdf(post).attrs["refit"])
-    assert recorded["target_accept"] == 0.99
+    assert recorded["target_acceptance"] == 0.99
     # the refit's wall time is kept with the posterior (not in the JSON, which reruns
     # reproduce byte for byte)
     assert recorded["seconds"] >= 0.05
@@ -91,7 +91,7 @@ def test_fit_with_check_writes_both_outputs_in_one_process(tmp_path, monkeypatch
                                            "datasets": config["datasets"]}))
     fitted = []
 
-    def fake_fit(config, dataset, model, *, threads=1, target_accept=None):
+    def fake_fit(config, dataset, model, *, threads=1, target_acceptance=None):
         fitted.append((dataset, model, threads))
         return _write_fit(config, line_posterior(seed=15))
 

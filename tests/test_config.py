@@ -39,7 +39,7 @@ def test_demo_config_is_valid_and_filled_with_schema_defaults():
 def test_defaults_fill_a_minimal_config():
     config = validate_config(_minimal())
     assert config["results_dir"] == "results"
-    assert config["sampler"]["target_accept"] == 0.9
+    assert config["sampler"]["target_acceptance"] == 0.9
     names = [h["name"] for h in config["hypotheses"]["exponents"]]
     assert names == ["surface law", "metabolic law", "isometry"]
     assert config["datasets"]["toy"]["sources"][0]["columns"]["levels"] == []
@@ -59,12 +59,32 @@ def test_wrong_type_is_an_error_naming_the_key():
         validate_config(config)
 
 
+@pytest.mark.parametrize(("old", "new"), [("tune", "warmup"),
+                                           ("target_accept", "target_acceptance"),
+                                           ("refit_target_accept", "refit_target_acceptance")])
+def test_renamed_sampler_key_stops_with_the_new_name(tmp_path, old, new):
+    path = tmp_path / "old.yaml"
+    path.write_text(yaml.safe_dump({**_minimal(), "sampler": {old: 0.5}}))
+    with pytest.raises(UserError, match=rf"old\.yaml: key 'sampler\.{old}'.*renamed.*"
+                                        rf"'sampler\.{new}'"):
+        load_config(path)
+    with pytest.raises(UserError, match=rf"'sampler\.{new}'"):  # an override alike
+        load_config(_write(tmp_path, _minimal()),
+                    [f"sampler.{old}=0.5"])
+
+
+def _write(tmp_path, config):
+    path = tmp_path / "c.yaml"
+    path.write_text(yaml.safe_dump(config))
+    return path
+
+
 def test_overrides_merge_nested_keys(tmp_path):
     path = tmp_path / "c.yaml"
     path.write_text(yaml.safe_dump(_minimal()))
-    config = load_config(path, ["sampler.draws=200", 'sampler={"tune": 150}'])
+    config = load_config(path, ["sampler.draws=200", 'sampler={"warmup": 150}'])
     assert config["sampler"]["draws"] == 200
-    assert config["sampler"]["tune"] == 150
+    assert config["sampler"]["warmup"] == 150
     assert config["sampler"]["chains"] == 4
 
 

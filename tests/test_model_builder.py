@@ -196,7 +196,7 @@ def test_a_fit_through_the_fit_stage_recovers_the_exponent_without_divergences()
         fit_model(model, seed=11)
     prior_model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0,
                               prior_only=True)
-    idata = fit_model(model, chains=2, draws=300, tune=400, target_accept=0.95, seed=11,
+    idata = fit_model(model, chains=2, draws=300, warmup=400, target_acceptance=0.95, seed=11,
                       prior_draws=20, prior_model=prior_model)
     assert int(idata.sample_stats["diverging"].sum()) == 0
     assert list(idata.log_likelihood.data_vars) == ["trait"]
@@ -217,7 +217,7 @@ def test_every_demo_model_fits_small_data_without_divergences(name):
     model = build_model(sim.data, load_spec(MODELS, name), levels=sim.levels,
                         log_reference_size=0.0)
     # R-hat < 1.01 needs enough draws to be a stable statistic: 2 x 1000
-    idata = quick_sample(model, seed=12, draws=1000, tune=1000, target_accept=0.95)
+    idata = quick_sample(model, seed=12, draws=1000, warmup=1000, target_acceptance=0.95)
     assert int(idata.sample_stats["diverging"].sum()) == 0
     rhat = az.rhat(idata)
     worst = max(float(rhat[v].max()) for v in rhat.data_vars)

@@ -72,7 +72,7 @@ def _stage_config(tmp_path: Path) -> dict:
     raw = {
         "results_dir": str(tmp_path / "results"),
         "models_dir": str(REPO / "models"),
-        "sampler": {"chains": 2, "draws": 100, "tune": 100, "seed": 99, "prior_draws": 20},
+        "sampler": {"chains": 2, "draws": 100, "warmup": 100, "seed": 99, "prior_draws": 20},
         "datasets": {"toy": {
             "title": "toy",
             "size": {"quantity": "mass", "unit": "g", "label": "mass"},

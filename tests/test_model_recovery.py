@@ -31,7 +31,7 @@ def test_curvature_model_recovers_exponent_and_curvature_of_taxa_in_different_si
                              trait_error_sd=0.05, taxa=(8,), species_per_taxon=20)
     model = build_model(sim.data, load_spec(MODELS, "taxa_errors_curved"), levels=sim.levels,
                         log_reference_size=0.0)
-    idata = quick_sample(model, seed=13, draws=500, tune=700, target_accept=0.95)
+    idata = quick_sample(model, seed=13, draws=500, warmup=700, target_acceptance=0.95)
     post = idata.posterior
     assert _inside_90(post["exponent"].values.ravel(), sim.truth["exponent"])
     assert _inside_90(post["curvature"].values.ravel(), sim.truth["curvature"])
@@ -61,7 +61,7 @@ def test_breakpoint_model_recovers_break_location_and_both_exponents():
     spec = load_spec(MODELS, "breakpoint")
     model = build_model(sim.data, spec, levels=sim.levels,
                         log_reference_size=0.0)
-    idata = quick_sample(model, seed=14, draws=500, tune=700, target_accept=0.95)
+    idata = quick_sample(model, seed=14, draws=500, warmup=700, target_acceptance=0.95)
     post = idata.posterior
     for name in ("break_log_size", "exponent", "exponent_above"):
         assert _inside_90(post[name].values.ravel(), sim.truth[name]), name
@@ -106,7 +106,7 @@ def test_demo_truth_is_recovered(tmp_path, dataset, model, parameters):
     log_ref = float(prepared["log_reference_size"])
     idata = quick_sample(build_model(data, load_spec(MODELS, model), levels=levels,
                                      log_reference_size=log_ref),
-                         seed=15, draws=500, tune=700, target_accept=0.95)
+                         seed=15, draws=500, warmup=700, target_acceptance=0.95)
     for name in parameters:
         draws = idata.posterior[name].values.ravel()
         value = truth[name]
@@ -167,7 +167,7 @@ def test_sbc_ranks_of_the_curved_errors_model_are_uniform_and_intervals_cover(tm
     out = tmp_path / "sbc.json"
     subprocess.run(
         [sys.executable, str(REPO / "benchmarks" / "calibration.py"), "--replicates", "20",
-         "--per-process", "10", "--bins", "5", "--seed", "5", "--draws", "400", "--tune",
+         "--per-process", "10", "--bins", "5", "--seed", "5", "--draws", "400", "--warmup",
          "600", "--out", str(out)], check=True, cwd=REPO,
     )
     result = json.loads(out.read_text())
@@ -192,7 +192,7 @@ def test_sbc_replicates_split_over_calls_give_the_same_records():
     sim = template_table()
     args = dict(levels=sim.levels, log_reference_size=0.0, parameters=PARAMETERS,
                 coverage_of=COVERAGE_OF, replicates=4, seed=3,
-                sampler={"draws": 50, "tune": 50, "chains": 2})
+                sampler={"draws": 50, "warmup": 50, "chains": 2})
     spec = parse_spec(SBC_SPEC, name="sbc")
     together = calibration_records(sim.data, spec, indices=[1, 2], **args)
     alone = calibration_records(sim.data, spec, indices=[2], **args)

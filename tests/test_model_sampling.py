@@ -19,7 +19,7 @@ from allolaw.runtime import LIGHTER_REWRITES
 REPO = Path(__file__).resolve().parents[1]
 SIGMA = 0.3  # known residual SD of the conjugate test model
 PRIOR_SD = 2.0
-SMALL = {"chains": 2, "draws": 150, "tune": 150, "threads": 1, "prior_draws": 40}
+SMALL = {"chains": 2, "draws": 150, "warmup": 150, "threads": 1, "prior_draws": 40}
 
 
 def _line_data(n: int = 25, seed: int = 7) -> tuple[np.ndarray, np.ndarray]:
@@ -137,11 +137,12 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
     # the model once per free variable to choose step methods). The reference is PyMC's own
     # route, pm.sample(nuts_sampler="nutpie"), with the same seed and settings: same draws,
     # same constant and observed data.
-    settings = {"draws": 60, "tune": 60, "chains": 2, "target_accept": 0.9}
+    settings = {"draws": 60, "chains": 2}
     compiling.lighter_jax_rewrites()
-    ours, _ = sampling._sample_nutpie(_tiny_model(), **settings, seed=21, cores=1,
-                                     progress=False)
-    reference = pm.sample(model=_tiny_model(), **settings, random_seed=21, progressbar=False,
+    ours, _ = sampling._sample_nutpie(_tiny_model(), **settings, warmup=60,
+                                     target_acceptance=0.9, seed=21, cores=1, progress=False)
+    reference = pm.sample(model=_tiny_model(), **settings, tune=60, target_accept=0.9,
+                          random_seed=21, progressbar=False,
                           nuts_sampler="nutpie", compute_convergence_checks=False,
                           nuts_sampler_kwargs={"cores": 1, "low_rank_modified_mass_matrix": True,
                                                **compiling.NUTPIE_COMPILE})
@@ -156,7 +157,7 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
 
 @pytest.mark.mcmc
 def test_default_backend_recovers_the_conjugate_normal_posterior() -> None:
-    idata = fit_model(_conjugate_model(), seed=5, chains=2, draws=300, tune=300,
+    idata = fit_model(_conjugate_model(), seed=5, chains=2, draws=300, warmup=300,
                       prior_draws=20)
     x, y = _line_data()
     # Closed form: posterior precision = X'X/σ² + I/τ², mean = cov · X'y/σ²

@@ -50,7 +50,7 @@ def test_exponent_posterior_equals_conjugate_closed_form_with_known_sigma():
     }
     spec = parse_spec({"taxa": {"levels": "none"}, "priors": priors}, name="conjugate")
     model = build_model(sim.data, spec, levels=[], log_reference_size=0.0)
-    idata = quick_sample(model, seed=1, draws=1000, tune=500)
+    idata = quick_sample(model, seed=1, draws=1000, warmup=500)
 
     x = sim.data["log_size"].to_numpy()
     y = sim.data["log_trait"].to_numpy()
@@ -136,7 +136,7 @@ def test_noisy_size_dilutes_the_exponent_unless_size_error_is_modelled():
                              seed=3)
     # the latent sizes correlate with sigma at this low reliability: NUTS needs a long warm-up
     fit_errors = quick_sample(build_model(sim.data, errors, levels=[], log_reference_size=0.0),
-                              seed=4, tune=1500, draws=500, target_accept=0.95)
+                              seed=4, warmup=1500, draws=500, target_acceptance=0.95)
     b_naive = _posterior(fit_naive, "exponent")
     b_errors = _posterior(fit_errors, "exponent")
     x = sim.data["log_size"].to_numpy()

@@ -125,7 +125,8 @@ def test_headline_named_exponent_and_tables_equal_hypotheses_and_comparison_csv(
     assert [r[head.index("model")] for r in body] == comp["model"].tolist()
     for row, (_, expected) in zip(body, comp.iterrows(), strict=True):
         cells = dict(zip(head, row, strict=True))
-        for col in ("elpd_loo", "se", "elpd_diff", "dse", "p_loo", "stacking_weight"):
+        for col in ("elpd_loo", "elpd_loo_se", "elpd_gap_to_best", "elpd_gap_se", "p_loo",
+                    "stacking_weight"):
             assert _close(cells[col], float(expected[col])), (col, cells[col], expected[col])
     assert "not</strong> model probabilities" in html
 
@@ -213,6 +214,16 @@ def test_page_is_self_contained_and_small(rendered):
     assert path.stat().st_mode & 0o777 == 0o666 & ~umask  # as a new file, not 0600 temp
 
 
+def test_catch_all_hypothesis_has_one_wording_and_no_library_column_names(rendered):
+    _, _, html = rendered
+    text = unescape(html)
+    assert "“another value”" in text
+    assert "some other value" not in text
+    # ArviZ's comparison column names stay out of the page (Vehtari et al. 2017 terms kept)
+    for name in ("elpd_diff", "dse", "n_bad_k", ">rank<", ">se<", ">warning<"):
+        assert name not in html, name
+
+
 def test_methods_paragraph_and_reproducibility_footer(rendered):
     config, _, html = rendered
     methods = html[html.index('id="methods"'):html.index('id="reproducibility"')]
@@ -249,14 +260,15 @@ def test_breakpoint_not_supported_when_loo_prefers_another_model_by_over_2_se(tm
     config = build_results(tmp_path)
     res = Path(config["results_dir"]) / "demo"
     comp = pd.read_csv(res / "comparison.csv")
-    comp.loc[len(comp)] = {"dataset": "demo", "model": BREAK, "rank": 2, "elpd_loo": -20.0,
-                           "se": 3.0, "elpd_diff": 7.655, "dse": 2.0, "p_loo": 8.0,
-                           "stacking_weight": 0.0, "n_bad_k": 0, "warning": False}
+    comp.loc[len(comp)] = {"dataset": "demo", "model": BREAK, "place": 3, "elpd_loo": -20.0,
+                           "elpd_loo_se": 3.0, "elpd_gap_to_best": 7.655, "elpd_gap_se": 2.0,
+                           "p_loo": 8.0, "stacking_weight": 0.0, "n_high_pareto_k": 0,
+                           "loo_caution": False}
     comp.to_csv(res / "comparison.csv", index=False)
     html = rendering.render_dataset_report(config, "demo").read_text(encoding="utf-8")
     brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
     assert "not supported" in brk
-    assert "LOO prefers another model by more than 2 SE" in brk
+    assert "LOO prefers another model by more than 2 standard errors of the elpd gap" in brk
 
 
 def test_break_and_local_exponent_figures_appear_for_the_models_that_have_them(rendered):

@@ -50,7 +50,7 @@ ONE_DATASET = {"cell_scaling": ["pooled", "taxa"]}
 # Sampler overrides merged over config.yaml with --configfile (the same path users take); tiny
 # chains, so checks may warn or fail on ESS, which is fine here: the tests compare runs.
 QUICK = "quick.yaml"
-_QUICK_SAMPLER = {"sampler": {"chains": 2, "draws": 150, "tune": 150}}
+_QUICK_SAMPLER = {"sampler": {"chains": 2, "draws": 150, "warmup": 150}}
 
 _GROUPS = ("posterior", "sample_stats", "log_likelihood", "posterior_predictive", "prior",
            "prior_predictive", "observed_data", "constant_data")

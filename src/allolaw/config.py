@@ -147,8 +147,29 @@ def _load_yaml(path: Path) -> tuple[Any, list[str]]:
     return data, [f"{path}, {s}" for s in loader.surprises]
 
 
+#: Sampler keys that were renamed: an old key stops with a message naming the new one.
+RENAMED_SAMPLER_KEYS = {
+    "tune": "warmup",
+    "target_accept": "target_acceptance",
+    "refit_target_accept": "refit_target_acceptance",
+}
+
+
 def validate_config(config: Any, *, source: str = "config") -> dict[str, Any]:
-    """Validate ``config`` against the schema and return a copy with defaults filled in."""
+    """Validate ``config`` against the schema and return a copy with defaults filled in.
+
+    Raises
+    ------
+    UserError
+        If the config breaks the schema, or uses a renamed sampler key (the message names
+        the new key).
+    """
+    sampler = config.get("sampler") if isinstance(config, dict) else None
+    for old, new in RENAMED_SAMPLER_KEYS.items():
+        if isinstance(sampler, dict) and old in sampler:
+            msg = (f"{source}: key 'sampler.{old}' (value {sampler[old]!r}) was renamed: "
+                   f"write 'sampler.{new}' instead")
+            raise UserError(msg)
     schema = load_schema("config")
     validator = jsonschema.Draft202012Validator(schema)
     errors = sorted(validator.iter_errors(config), key=lambda e: list(e.absolute_path))

@@ -24,8 +24,8 @@ __all__ = ["COMPARISON_COLUMNS", "STACKING_NOTE", "compare_models"]
 
 #: Columns of ``comparison.csv`` (DEVELOPERS.md contract, then our additions).
 COMPARISON_COLUMNS = [
-    "dataset", "model", "rank", "elpd_loo", "se", "elpd_diff", "dse", "p_loo",
-    "stacking_weight", "n_bad_k", "warning", "check_verdict", "note",
+    "dataset", "model", "place", "elpd_loo", "elpd_loo_se", "elpd_gap_to_best", "elpd_gap_se",
+    "p_loo", "stacking_weight", "n_high_pareto_k", "loo_caution", "check_verdict", "note",
 ]
 #: Written beside every stacking weight.
 STACKING_NOTE = (
@@ -84,15 +84,16 @@ def compare_models(
                       * fits[str(name)].posterior.sizes["draw"])
         k = np.asarray(loo.pareto_k.values, dtype=float)
         thr = pareto_k_threshold(n_draws)
-        n_bad = int(np.sum(~(k <= thr)))
-        warning = (f"{n_bad} observation(s) with Pareto k > {thr:.2f}: this model's LOO "
-                   "estimate is unreliable" if n_bad else "")
+        n_high = int(np.sum(~(k <= thr)))
+        caution = (f"{n_high} observation(s) with Pareto k > {thr:.2f}: this model's LOO "
+                   "estimate is unreliable" if n_high else "")
         rows.append({
-            "dataset": "", "model": str(name), "rank": int(rec["rank"]),
-            "elpd_loo": float(rec["elpd_loo"]), "se": float(rec["se"]),
-            "elpd_diff": float(rec["elpd_diff"]), "dse": float(rec["dse"]),
+            # ArviZ's column names (rank from 0, se, elpd_diff, dse) read here only
+            "dataset": "", "model": str(name), "place": int(rec["rank"]) + 1,
+            "elpd_loo": float(rec["elpd_loo"]), "elpd_loo_se": float(rec["se"]),
+            "elpd_gap_to_best": float(rec["elpd_diff"]), "elpd_gap_se": float(rec["dse"]),
             "p_loo": float(rec["p_loo"]), "stacking_weight": float(rec["weight"]),
-            "n_bad_k": n_bad, "warning": warning,
+            "n_high_pareto_k": n_high, "loo_caution": caution,
             "check_verdict": verdicts.get(str(name), "not checked"), "note": STACKING_NOTE,
         })
     return pd.DataFrame(rows, columns=COMPARISON_COLUMNS)

@@ -193,8 +193,8 @@ def _curvature_verdict(audit: dict[str, Any], names: dict[str, str]) -> str:
     p_pos = audit["p_curvature_positive"]
     curv = audit["curvature"]
     d = audit["loo_differences"][0]
-    loo_text = (f"LOO prefers '{d['better']}' by {abs(d['elpd_diff']):.1f} ± {d['se']:.1f} "
-                "elpd")
+    loo_text = (f"LOO prefers '{d['better']}' by {abs(d['elpd_difference']):.1f} elpd "
+                f"(standard error {d['elpd_difference_se']:.1f})")
     if share >= _MOST:
         head = "Most of the spread of taxon exponents is explained by one curved law"
     elif share <= _LITTLE:
@@ -220,7 +220,8 @@ def _loo_difference(loo: dict[str, Any], a: str, b: str, names: dict[str, str]
     diff = pa - pb
     se = float(np.sqrt(diff.size * np.var(diff)))
     total = float(diff.sum())
-    return {"model_a": names[a], "model_b": names[b], "elpd_diff": total, "se": se,
+    return {"model_a": names[a], "model_b": names[b], "elpd_difference": total,
+            "elpd_difference_se": se,
             "better": names[a] if total > 0 else names[b]}
 
 

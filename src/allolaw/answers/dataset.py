@@ -70,12 +70,12 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
 
     table = compare_models(fits, verdicts=verdicts)
     if missing:
-        absent = pd.DataFrame([{"model": m, "warning": "no fit", "check_verdict": verdicts[m],
+        absent = pd.DataFrame([{"model": m, "loo_caution": "no fit", "check_verdict": verdicts[m],
                                 "note": "not fitted; not compared"} for m in missing])
         table = pd.concat([table, absent], ignore_index=True) if len(table) else absent
         table = table.reindex(columns=COMPARISON_COLUMNS)
     table["dataset"] = dataset
-    for column in ("rank", "n_bad_k"):
+    for column in ("place", "n_high_pareto_k"):
         table[column] = table[column].astype("Int64")  # integers, empty for an absent fit
     _write_csv(paths.comparison_path(results, dataset), table[COMPARISON_COLUMNS])
 

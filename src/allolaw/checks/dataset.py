@@ -58,19 +58,20 @@ def check_dataset_model(
     result, findings = check_fit(idata)
     refit: dict[str, Any] | None = None
     if result.n_divergent > 0:
-        target = float(config["sampler"]["refit_target_accept"])
+        target = float(config["sampler"]["refit_target_acceptance"])
         before = _refit_numbers(result)
-        log.info("%s/%s: %d divergences; refitting once with target_accept=%.3f",
+        log.info("%s/%s: %d divergences; refitting once with target acceptance %.3f",
                  dataset, model, result.n_divergent, target)
         from allolaw.model.fitting import fit_dataset_model
 
         refit_start = time.perf_counter()
-        idata = fit_dataset_model(config, dataset, model, threads=threads, target_accept=target)
+        idata = fit_dataset_model(config, dataset, model, threads=threads,
+                                  target_acceptance=target)
         refit_seconds = time.perf_counter() - refit_start
         result, findings = check_fit(idata)
         refit = {
             "reason": f"{before['n_divergent']} divergent transitions in the first fit",
-            "target_accept": target,
+            "target_acceptance": target,
             "before": before,
             "after": _refit_numbers(result),
         }

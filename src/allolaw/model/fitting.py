@@ -48,7 +48,7 @@ def fit_dataset_model(
     model_name: str,
     *,
     threads: int = 1,
-    target_accept: float | None = None,
+    target_acceptance: float | None = None,
 ) -> az.InferenceData:
     """Fit one model spec to one prepared dataset and write its ``posterior.nc``.
 
@@ -62,8 +62,8 @@ def fit_dataset_model(
         Model spec name (``models/<name>.yaml``).
     threads
         Cores for the job.
-    target_accept
-        Overrides ``sampler.target_accept`` (the check stage's refit after divergences).
+    target_acceptance
+        Overrides ``sampler.target_acceptance`` (the check stage's refit after divergences).
 
     Returns
     -------
@@ -89,8 +89,8 @@ def fit_dataset_model(
     log_reference_size = _log_reference_size(prepared, prepared_path(results, dataset))
     spec = load_spec(config["models_dir"], model_name)
     sampler = dict(config["sampler"])
-    if target_accept is not None:
-        sampler["target_accept"] = float(target_accept)
+    if target_acceptance is not None:
+        sampler["target_acceptance"] = float(target_acceptance)
     seed = derive_seed(int(sampler["seed"]), dataset, model_name)
 
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
@@ -101,8 +101,8 @@ def fit_dataset_model(
         model,
         chains=int(sampler["chains"]),
         draws=int(sampler["draws"]),
-        tune=int(sampler["tune"]),
-        target_accept=float(sampler["target_accept"]),
+        warmup=int(sampler["warmup"]),
+        target_acceptance=float(sampler["target_acceptance"]),
         seed=seed,
         backend=str(sampler.get("backend", "auto")),
         threads=threads,
@@ -119,7 +119,7 @@ def fit_dataset_model(
             "data_sha256": _sha256(clean_file),
             "versions": json.dumps(_versions(), sort_keys=True),
             "log_reference_size": float(log_reference_size),
-            "refit": json.dumps(target_accept is not None),
+            "refit": json.dumps(target_acceptance is not None),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
     )

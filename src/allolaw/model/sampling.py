@@ -57,8 +57,8 @@ def fit_model(
     *,
     chains: int = 4,
     draws: int = 1000,
-    tune: int = 1000,
-    target_accept: float = 0.9,
+    warmup: int = 1000,
+    target_acceptance: float = 0.9,
     seed: int,
     backend: str = "auto",
     threads: int = 1,
@@ -71,9 +71,9 @@ def fit_model(
     ----------
     model
         A PyMC model with an observed variable named ``trait``.
-    chains, draws, tune
+    chains, draws, warmup
         Number of chains, kept draws per chain and warm-up draws per chain.
-    target_accept
+    target_acceptance
         NUTS target acceptance rate (step-size adaptation).
     seed
         Base seed. The same seed gives the same draws on rerun on the same machine; the
@@ -121,12 +121,13 @@ def fit_model(
     progress = _show_progress()
     fallback = ""
     log.info(
-        "fit: backend %s, %d chains x (%d tune + %d draws), %d thread(s), seed %d",
-        chosen, chains, tune, draws, threads, seed,
+        "fit: backend %s, %d chains x (%d warm-up + %d draws), %d thread(s), seed %d",
+        chosen, chains, warmup, draws, threads, seed,
     )
     try:
         idata, compile_s, sampling_s = _sample(
-            model, chosen, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
+            model, chosen, chains=chains, draws=draws, warmup=warmup,
+            target_acceptance=target_acceptance,
             seed=int(seed), threads=threads, progress=progress,
         )
         used = chosen
@@ -136,7 +137,8 @@ def fit_model(
         fallback = f"{chosen} failed: {type(err).__name__}: {err}"
         log.warning("fit: %s; falling back to pymc", fallback)
         idata, compile_s, sampling_s = _sample(
-            model, "pymc", chains=chains, draws=draws, tune=tune, target_accept=target_accept,
+            model, "pymc", chains=chains, draws=draws, warmup=warmup,
+            target_acceptance=target_acceptance,
             seed=int(seed), threads=threads, progress=progress,
         )
         used = "pymc"
@@ -248,8 +250,8 @@ def _sample(
     *,
     chains: int,
     draws: int,
-    tune: int,
-    target_accept: float,
+    warmup: int,
+    target_acceptance: float,
     seed: int,
     threads: int,
     progress: bool,
@@ -263,9 +265,9 @@ def _sample(
 
     kwargs: dict[str, Any] = {
         "draws": draws,
-        "tune": tune,
+        "tune": warmup,  # the library's own keywords from here on
         "chains": chains,
-        "target_accept": target_accept,
+        "target_accept": target_acceptance,
         "random_seed": seed,
         "progressbar": progress,
         "model": model,
@@ -286,7 +288,8 @@ def _sample(
         log.info("fit: %s sampling started", backend)
         start = time.perf_counter()
         idata, sampling = _sample_nutpie(
-            model, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
+            model, draws=draws, warmup=warmup, chains=chains,
+            target_acceptance=target_acceptance,
             seed=seed, cores=max(1, threads), progress=progress)
         total = time.perf_counter() - start
         return idata, total - sampling, sampling
@@ -303,9 +306,9 @@ def _sample_nutpie(
     model: Any,
     *,
     draws: int,
-    tune: int,
+    warmup: int,
     chains: int,
-    target_accept: float,
+    target_acceptance: float,
     seed: int,
     cores: int,
     progress: bool,
@@ -330,7 +333,7 @@ def _sample_nutpie(
     compiled = nutpie.compile_pymc_model(model, **NUTPIE_COMPILE)
     start = time.time()
     idata = nutpie.sample(
-        compiled, draws=draws, tune=tune, chains=chains, target_accept=target_accept,
+        compiled, draws=draws, tune=warmup, chains=chains, target_accept=target_acceptance,
         seed=int(seed), progress_bar=progress, cores=cores,
         low_rank_modified_mass_matrix=True,
     )
@@ -343,7 +346,7 @@ def _sample_nutpie(
                             ("observed_data", find_observations))
     }
     idata.add_groups(groups, coords=coords, dims=dims)
-    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": tune})
+    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup})
     return idata, sampling
 
 

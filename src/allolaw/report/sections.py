@@ -248,7 +248,7 @@ def _crossings(obj: dict[str, Any]) -> list[dict[str, Any]]:
 # the two sides differ by more than δ with probability ≥ 0.95, the breakpoint model is not
 # worse than the best by LOO by more than 2 SE of the difference, and its checks did not fail.
 _BREAK_P_MIN = 0.95
-_BREAK_DSE = 2.0
+_BREAK_GAP_SES = 2.0  # standard errors of the elpd gap (rule of thumb)
 
 
 def breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] | None:
@@ -280,9 +280,10 @@ def breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] | 
         checks_ok = m.get("check_verdict") != "fail"
         loo_ok = None
         if loo is not None:
-            diff, dse = as_float(loo.get("elpd_diff")), as_float(loo.get("dse"))
-            if diff is not None and dse is not None:
-                loo_ok = abs(diff) <= _BREAK_DSE * dse or abs(diff) == 0
+            gap = as_float(loo.get("elpd_gap_to_best"))
+            gap_se = as_float(loo.get("elpd_gap_se"))
+            if gap is not None and gap_se is not None:
+                loo_ok = abs(gap) <= _BREAK_GAP_SES * gap_se or abs(gap) == 0
         row["supported"] = (p is not None and p >= _BREAK_P_MIN and checks_ok
                             and loo_ok is not False)
         row["loo_ok"] = loo_ok
@@ -299,15 +300,16 @@ def breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] | 
         f"{fmt(best.get('delta'))}) = {fmt(best.get('p_abs_difference_above_delta'))}"
     )
     if best["loo_ok"] is False:
-        answer += "; LOO prefers another model by more than 2 SE"
+        answer += "; LOO prefers another model by more than 2 standard errors of the elpd gap"
     if best.get("check_verdict") == "fail":
         answer += "; its checks failed"
     elif best.get("check_verdict") in (None, "", "not checked", "missing"):
         answer += "; its fit has not been checked"
     return {"answer": answer + ".", "supported": best["supported"], "rows": rows,
             "rule": (f"A break is called supported when P(|difference| > δ) ≥ {_BREAK_P_MIN}, "
-                     f"the breakpoint model is within {_BREAK_DSE:g} SE of the best model by "
-                     "LOO, and its checks did not fail (a rule of thumb, not a test).")}
+                     f"the breakpoint model's elpd gap to the best model by LOO is within "
+                     f"{_BREAK_GAP_SES:g} standard errors, and its checks did not fail (a rule "
+                     "of thumb, not a test).")}
 
 
 def _flatten(obj: Any, prefix: str = "") -> list[tuple[str, Any]]:

@@ -175,9 +175,9 @@ def quick_sample(
     *,
     seed: int,
     draws: int = 300,
-    tune: int = 300,
+    warmup: int = 300,
     chains: int = 2,
-    target_accept: float = 0.9,
+    target_acceptance: float = 0.9,
 ) -> Any:
     """A small seeded NUTS run (numpyro, chains in sequence, posterior only) for tests.
 
@@ -188,9 +188,9 @@ def quick_sample(
 
     return pm.sample(
         draws=draws,
-        tune=tune,
+        tune=warmup,  # PyMC's own keywords
         chains=chains,
-        target_accept=target_accept,
+        target_accept=target_acceptance,
         random_seed=seed,
         progressbar=False,
         model=model,
