@@ -47,8 +47,8 @@ def run_worker(args: argparse.Namespace) -> None:
 
     scenario, seed, model = args.worker
     spec = load_spec(REPO / "models", model)
-    record = fit_scenario(scenario, int(seed), spec, draws=args.draws, tune=args.warmup,
-                          chains=args.chains, target_accept=args.target_accept)
+    record = fit_scenario(scenario, int(seed), spec, draws=args.draws, warmup=args.warmup,
+                          chains=args.chains, target_acceptance=args.target_accept)
     Path(args.record).write_text(json.dumps(record), encoding="utf-8")
 
 

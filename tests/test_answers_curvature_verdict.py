@@ -160,7 +160,7 @@ def _mcmc_verdict(scenario, seed):
         with warnings.catch_warnings():
             # 2 short chains: convergence warnings are expected; the verdict is tested
             warnings.simplefilter("ignore")
-            fits[name] = fit_model(model, chains=2, draws=300, tune=300, seed=seed,
+            fits[name] = fit_model(model, chains=2, draws=300, warmup=300, seed=seed,
                                    prior_draws=20, prior_model=prior_model)
     ev = audit_evidence(fits["taxa_linear"], fits["taxa_curved"], fits["one_curve"])
     return judge_curvature(ev)

@@ -250,7 +250,7 @@ def _mcmc_break_pair(seed, change):
         with warnings.catch_warnings():
             # 2 short chains: convergence warnings are expected; the verdict is what is tested
             warnings.simplefilter("ignore")
-            fits[name] = fit_model(model, chains=2, draws=300, tune=300, seed=seed,
+            fits[name] = fit_model(model, chains=2, draws=300, warmup=300, seed=seed,
                                    prior_draws=20, prior_model=prior_model)
     evidence = break_evidence(fits["break"], specs["break"])
     return judge_break(evidence, loo_difference(fits["break"], fits["straight"]))

@@ -190,7 +190,7 @@ def _mcmc_taxa_fit(prior_sd, seed):
                               prior_only=True)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # short chains: convergence warnings expected
-        idata = fit_model(model, chains=2, draws=1000, tune=500, seed=seed, prior_draws=20,
+        idata = fit_model(model, chains=2, draws=1000, warmup=500, seed=seed, prior_draws=20,
                           prior_model=prior_model)
     return idata, spec
 

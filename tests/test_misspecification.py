@@ -235,6 +235,6 @@ def test_fixed_designs_recover_three_quarters_with_the_improved_model():
 
     spec = load_spec(REPO / "models", "taxa_errors")
     for name in ("wide_20x12", "wide_8x15"):
-        record = fit_scenario(name, 1, spec, draws=500, tune=500, chains=4)
+        record = fit_scenario(name, 1, spec, draws=500, warmup=500, chains=4)
         assert record["lo"] <= 0.75 <= record["hi"], name
         assert record["top"] == "3/4", name

@@ -78,7 +78,7 @@ def check_against_mcmc(plan: Plan, prior: DesignPrior, pairs: list[tuple[int, in
             mcmc = json.loads(path.read_text())
         else:
             mcmc = _fit_mcmc(plan, sims, design_index, table, truth, models_dir,
-                             {"chains": 2, "draws": 1000, "tune": 1000, "target_accept": 0.9,
+                             {"chains": 2, "draws": 1000, "warmup": 1000, "target_acceptance": 0.9,
                               "backend": "auto", **(sampler or {})})
             if path is not None:
                 path.parent.mkdir(parents=True, exist_ok=True)
@@ -122,7 +122,7 @@ def _fit_mcmc(plan: Plan, sims: SimulatedTables, design_index: int, table: int, 
     prior_model = build_model(data, spec, levels=levels, log_reference_size=0.0,
                               prior_only=True)
     idata = fit_model(model, chains=sampler["chains"], draws=sampler["draws"],
-                      tune=sampler["tune"], target_accept=sampler["target_accept"],
+                      warmup=sampler["warmup"], target_acceptance=sampler["target_acceptance"],
                       seed=plan.seed * 1000 + table, backend=sampler["backend"],
                       prior_draws=20, prior_model=prior_model)
     seconds = time.perf_counter() - start

@@ -70,9 +70,9 @@ def fit_scenario(
     spec: Any,
     *,
     draws: int = 500,
-    tune: int = 500,
+    warmup: int = 500,
     chains: int = 4,
-    target_accept: float = 0.9,
+    target_acceptance: float = 0.9,
 ) -> dict[str, Any]:
     """Simulate scenario ``name`` with ``seed``, fit ``spec`` and score the fit.
 
@@ -87,10 +87,10 @@ def fit_scenario(
     sim = simulate_scenario(name, seed)
     model = build_model(sim.data, spec, levels=sim.levels,
                         log_reference_size=sim.log_reference_size)
-    idata = quick_sample(model, seed=seed, draws=draws, tune=tune, chains=chains,
-                         target_accept=target_accept)
+    idata = quick_sample(model, seed=seed, draws=draws, warmup=warmup, chains=chains,
+                         target_acceptance=target_acceptance)
     record = {"scenario": name, "seed": seed, "model": spec.name, "draws": draws,
-              "tune": tune, "chains": chains, "species": len(sim.data)}
+              "warmup": warmup, "chains": chains, "species": len(sim.data)}
     record |= score_fit(idata, sim, spec)
     record["seconds"] = time.perf_counter() - start
     return record
