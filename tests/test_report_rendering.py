@@ -8,6 +8,7 @@ here runs MCMC. The numbers on the page are compared with those files, parsed in
 
 from __future__ import annotations
 
+import json
 import math
 import os
 import re
@@ -20,6 +21,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from allolaw.checks.reading import read_posterior
 from allolaw.config import config_sha256
 from allolaw.report import charts, figures, rendering, summary
 from allolaw.report.benchmarks import read_benchmarks
@@ -222,6 +224,19 @@ def test_catch_all_hypothesis_has_one_wording_and_no_library_column_names(render
     # ArviZ's comparison column names stay out of the page (Vehtari et al. 2017 terms kept)
     for name in ("elpd_diff", "dse", "n_bad_k", ">rank<", ">se<", ">warning<"):
         assert name not in html, name
+
+
+def test_page_of_a_fit_recorded_with_the_old_sampler_keys_still_renders(tmp_path):
+    config = build_results(tmp_path)
+    res = Path(config["results_dir"]) / "demo"
+    for model in (PRIMARY, CURVED, BREAK):
+        post = res / model / "posterior.nc"
+        idata = read_posterior(post)  # fully read and closed, so it can be rewritten
+        idata.attrs["sampler"] = json.dumps({"chains": 2, "draws": 200, "tune": 200,
+                                             "target_accept": 0.9})
+        idata.to_netcdf(str(post))
+    html = rendering.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    assert "this fit predates the sampler keys" in html
 
 
 def test_methods_paragraph_and_reproducibility_footer(rendered):
