@@ -23,6 +23,9 @@ CONFIG = {
 
 @pytest.mark.slow
 @pytest.mark.mcmc
+# the JAX-compiled predictive draws of a model with errors in size skip a shape assertion of
+# the graph (JAX tracing cannot run it) and warn; the shapes here come from one table
+@pytest.mark.filterwarnings("ignore:Skipping Assert:UserWarning")
 def test_fast_probability_of_the_true_value_is_within_005_of_mcmc_on_six_tables() -> None:
     # Six tables over six of the eight designs (with and without size error and taxa), each
     # fitted by the models/taxa(_errors).yaml model with NUTS; the headline number is the
