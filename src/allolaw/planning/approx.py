@@ -15,13 +15,15 @@ s_b (0.25), σ (1)). Three steps:
    ``a + α_t + (b + β_t)·m`` and variance ``σ² + d² + (b + β_t)²·v``: exact given the
    exponent, whose square enters the variance. We use the mean of b² over the first pass's
    posterior there and iterate once (regression calibration with a variance correction,
-   Carroll et al. 2006, ch. 4). μ and τ² are estimated from w (mean; variance minus e²,
-   floored at 1 % of the variance), i.e. plugged in rather than integrated.
-2. **Coefficients exactly.** Given the hyperparameters θ = (log s_a, log s_b, log σ) the
+   Carroll et al. 2006, ch. 4). μ is the mean of w (plugged in); τ is a hyperparameter
+   (below), with ``log p(w | μ, τ)`` in its posterior and the model's half-normal prior.
+2. **Coefficients exactly.** Given the hyperparameters θ (taxon SDs, σ, τ) the
    model is linear-normal, so the taxon deviations and then (a, b) integrate out in closed
    form (Lindley & Smith 1972). Per taxon only 2×2 sums are needed (Woodbury identity), and
    every table is a row of the same arrays.
-3. **Hyperparameters by Laplace and quadrature.** The log posterior of θ is maximised by
+3. **Hyperparameters by Laplace and quadrature.** θ holds the log SDs that are free (log
+   s_a, log s_b with taxa; log σ unless known; log τ with size error). Its log posterior is
+   maximised by
    damped Newton steps (finite-difference derivatives, a fixed number of steps so each table's
    result does not depend on the others), then integrated over a Gauss–Hermite grid in the
    Laplace coordinates, each node weighted by the exact posterior ratio (the grid strategy
