@@ -124,3 +124,49 @@ def test_changed_config_section_is_refused_when_the_reader_is_given_it(tmp_path)
     ds["sources"][0]["units"]["size"] = "kg"
     with pytest.raises(UserError, match="config of dataset 'd' has changed"):
         read_clean(tmp_path / "results", "d", config_sha256=config_section_sha256(ds, 20.1))
+
+
+def test_later_stages_refuse_or_flag_a_prepared_set_whose_config_or_files_changed(tmp_path):
+    # fit reads through read_clean/read_prepared with the config section's hash; compare reads
+    # prepared.json through the same check; the report renders but shows the mismatch
+    from allolaw.answers.dataset import compare_dataset
+    from allolaw.config import load_config
+    from allolaw.intake.manifest import dataset_config_sha256
+    from allolaw.report.summary import summarise_dataset
+
+    config_path = _setup(tmp_path)
+    assert main(["prepare", "--config", str(config_path), "--dataset", "d"]) == 0
+    config = load_config(config_path)
+    results = tmp_path / "results"
+    good = dataset_config_sha256(config, "d")
+    assert len(read_clean(results, "d", config_sha256=good)) == 3
+    context = summarise_dataset(config, "d")
+    assert context["data"]["manifest_problem"] is None
+
+    edited = load_config(config_path)
+    edited["datasets"]["d"]["size"]["unit"] = "kg"  # the config changed after prepare
+    with pytest.raises(UserError, match="config of dataset 'd' has changed"):
+        read_clean(results, "d", config_sha256=dataset_config_sha256(edited, "d"))
+    with pytest.raises(UserError, match="config of dataset 'd' has changed"):
+        compare_dataset(edited, "d")
+    assert "has changed" in summarise_dataset(edited, "d")["data"]["manifest_problem"]
+
+    (tmp_path / "t.csv").write_text(NEW, encoding="utf-8")  # the input changed after prepare
+    with pytest.raises(UserError, match="input file has changed"):
+        compare_dataset(config, "d")
+
+
+def test_intake_warnings_reach_the_report_page(tmp_path):
+    from allolaw.config import load_config
+    from allolaw.report.rendering import render_dataset_report
+
+    config_path = _setup(tmp_path, OLD + "=Mus risky,Muridae,20,0.2\n")
+    assert main(["prepare", "--config", str(config_path), "--dataset", "d"]) == 0
+    config = load_config(config_path)
+    config["reports_dir"] = str(tmp_path / "reports")
+    warnings = read_prepared(tmp_path / "results", "d")["warnings"]
+    assert warnings  # a cell a spreadsheet would run as a formula is neutralised, with a warning
+    page = render_dataset_report(config, "d").read_text(encoding="utf-8")
+    assert 'id="intake-warnings"' in page
+    assert f"Warnings from reading the files ({len(warnings)})" in page
+    assert 'id="manifest-problem"' not in page

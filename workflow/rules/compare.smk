@@ -6,6 +6,7 @@ rule compare_models:
         clean=f"{RESULTS}/{{dataset}}/clean.csv",
         ledger=f"{RESULTS}/{{dataset}}/ledger.csv",
         prepared=f"{RESULTS}/{{dataset}}/prepared.json",
+        manifest=f"{RESULTS}/{{dataset}}/manifest.json",
         posteriors=dataset_posteriors,
         checks=dataset_checks,
     output:

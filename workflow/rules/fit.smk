@@ -6,6 +6,7 @@ rule fit_model:
     input:
         clean=f"{RESULTS}/{{dataset}}/clean.csv",
         prepared=f"{RESULTS}/{{dataset}}/prepared.json",
+        manifest=f"{RESULTS}/{{dataset}}/manifest.json",
         spec=model_spec,
     output:
         posterior=f"{RESULTS}/{{dataset}}/{{model}}/posterior.nc",

@@ -37,6 +37,7 @@ from allolaw.answers.curvature import audit_curvature, local_exponent
 from allolaw.answers.hypotheses import compare_hypotheses
 from allolaw.checks.reading import read_groups
 from allolaw.config import dataset_config, hypotheses_config
+from allolaw.intake.manifest import dataset_config_sha256, read_prepared
 from allolaw.io import atomic_path, write_json
 
 __all__ = ["compare_dataset"]
@@ -66,7 +67,11 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
             missing.append(model)
             log.warning("%s/%s: no posterior.nc; left out of the comparison", dataset, model)
     verdicts = {m: _check_verdict(results, dataset, m) for m in ds["models"]}
-    prepared = _read_json(paths.prepared_path(results, dataset))
+    # through the manifest check: a half-written or stale prepared set is refused here too
+    prepared = None  # a comparison of fits alone (no prepared set) still runs, as before
+    if paths.prepared_path(results, dataset).is_file():
+        prepared = read_prepared(results, dataset,
+                                 config_sha256=dataset_config_sha256(config, dataset))
 
     table = compare_models(fits, verdicts=verdicts)
     if missing:

@@ -23,8 +23,8 @@ from allolaw.errors import UserError
 from allolaw.io import write_json
 from allolaw.paths import clean_path, ledger_path, manifest_path, prepared_path
 
-__all__ = ["config_section_sha256", "read_clean", "read_prepared", "verify_manifest",
-           "write_manifest"]
+__all__ = ["config_section_sha256", "dataset_config_sha256", "read_clean", "read_prepared",
+           "verify_manifest", "write_manifest"]
 
 _TEXT_COLUMNS = ("species", "source", "sd_source_size", "sd_source_trait")
 
@@ -34,6 +34,19 @@ def config_section_sha256(ds: dict[str, Any], energy: float) -> str:
     text = json.dumps({"dataset": ds, "energy_per_ml_o2_joule": energy}, sort_keys=True,
                       default=str)
     return hashlib.sha256(text.encode()).hexdigest()
+
+
+def dataset_config_sha256(config: dict[str, Any], dataset: str) -> str:
+    """:func:`config_section_sha256` of ``dataset`` in a batch config, as ``prepare`` records it.
+
+    Later stages pass it to :func:`read_clean` / :func:`read_prepared`, so a dataset whose
+    config section changed after it was prepared is refused instead of fitted silently.
+    """
+    from allolaw.config import dataset_config
+    from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
+
+    energy = float(config.get("energy_per_ml_o2_joule", DEFAULT_ENERGY_PER_ML_O2_JOULE))
+    return config_section_sha256(dataset_config(config, dataset), energy)
 
 
 def write_manifest(results_dir: str | Path, dataset: str, *, inputs: list[dict[str, str]],
@@ -100,7 +113,10 @@ def verify_manifest(results_dir: str | Path, dataset: str, *,
             msg = (f"{source}: the input file {state} since dataset '{dataset}' was prepared: "
                    f"{rerun}")
             raise UserError(msg)
-    if config_sha256 is not None and manifest["inputs"].get("config_sha256") != config_sha256:
+    recorded_config = manifest["inputs"].get("config_sha256")
+    # a set written without a config (by hand, in tests) records None: nothing to compare
+    if config_sha256 is not None and recorded_config is not None \
+            and recorded_config != config_sha256:
         msg = f"the config of dataset '{dataset}' has changed since it was prepared: {rerun}"
         raise UserError(msg)
     return manifest

@@ -82,9 +82,11 @@ def fit_dataset_model(
     results = Path(config["results_dir"])
     clean_file = clean_path(results, dataset)
     from allolaw.intake import read_clean, read_prepared
+    from allolaw.intake.manifest import dataset_config_sha256
 
-    data = read_clean(results, dataset)
-    prepared = read_prepared(results, dataset)
+    config_hash = dataset_config_sha256(config, dataset)
+    data = read_clean(results, dataset, config_sha256=config_hash)
+    prepared = read_prepared(results, dataset, config_sha256=config_hash)
     levels = _levels(config, dataset, prepared)
     log_reference_size = _log_reference_size(prepared, prepared_path(results, dataset))
     spec = load_spec(config["models_dir"], model_name)

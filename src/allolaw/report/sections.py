@@ -54,6 +54,7 @@ def data_section(
         out["ledger_matches_prepared"] = None
     out["counts"] = counts
     out["drop_reasons"] = prep.get("drop_reasons", {})
+    out["intake_warnings"] = list(prep.get("warnings") or [])
     out["outliers"] = (prep.get("outliers") or {}).get("rows", [])
     out["outlier_rule"] = prep.get("outliers") or {}
     out["singletons"] = {k: v for k, v in (prep.get("singleton_taxa") or {}).items() if v}

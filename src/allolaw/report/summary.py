@@ -97,6 +97,7 @@ def summarise_dataset(
         "pct": pct,
     }
     context["data"] = data_section(prepared, clean, ledger, levels)
+    context["data"]["manifest_problem"] = _manifest_problem(config, dataset, prepared)
     context["hypotheses"] = table_rows(hyp, constant=("dataset", "parameter"),
                                    hidden=("method", "note"))
     context["hypothesis_notes"] = (
@@ -205,3 +206,20 @@ def _units(ds: dict[str, Any], prepared: dict[str, Any] | None) -> dict[str, Any
         "reference_size": ref,
         "log_reference_size": (prepared or {}).get("log_reference_size"),
     }
+
+
+def _manifest_problem(config: dict[str, Any], dataset: str,
+                      prepared: dict[str, Any] | None) -> str | None:
+    # the page renders whatever exists, so a stale or half-written prepared set is shown as a
+    # failure on the page instead of stopping the report (the fit and compare stages refuse it)
+    if prepared is None:
+        return None
+    from allolaw.errors import UserError
+    from allolaw.intake.manifest import dataset_config_sha256, verify_manifest
+
+    try:
+        verify_manifest(config["results_dir"], dataset,
+                        config_sha256=dataset_config_sha256(config, dataset))
+    except UserError as err:
+        return str(err)
+    return None
