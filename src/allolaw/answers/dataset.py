@@ -41,6 +41,7 @@ from allolaw.answers.breakpoint import summarise_breakpoint
 from allolaw.answers.comparison import COMPARE_GROUPS, COMPARISON_COLUMNS, compare_models
 from allolaw.answers.curvature import audit_curvature, local_exponent
 from allolaw.answers.hypotheses import compare_hypotheses
+from allolaw.answers.stacking import stack_fits
 from allolaw.answers.verdicts import (
     break_block,
     curvature_block,
@@ -91,6 +92,9 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
         table = pd.concat([table, absent], ignore_index=True) if len(table) else absent
         table = table.reindex(columns=COMPARISON_COLUMNS)
     table["dataset"] = dataset
+    # one set of stacking weights for the table and the averaged exponent (Yao et al. 2018)
+    weights = stack_fits(fits).as_dict() if fits else {}
+    table["stacking_weight"] = table["model"].map(weights)
     for column in ("place", "n_high_pareto_k"):
         table[column] = table[column].astype("Int64")  # integers, empty for an absent fit
     _write_csv(paths.comparison_path(results, dataset), table[COMPARISON_COLUMNS])
@@ -117,7 +121,7 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
     breaks = _dataset_breakpoints(fits, specs, settings, prepared, verdicts)
     write_json(paths.breakpoint_path(results, dataset), _clean(breaks))
     primary = ds.get("primary_model") or ds["models"][-1]
-    head = headline_block(fits, hyp, primary=primary)
+    head = headline_block(fits, hyp, primary=primary, weights=weights)
     head["sensitivity"] = sensitivity
     write_json(paths.headline_path(results, dataset), _clean(head))
 

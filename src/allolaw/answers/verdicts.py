@@ -17,12 +17,14 @@ compare stage writes, built on the computational cores:
 from __future__ import annotations
 
 import dataclasses
+import math
 import warnings
 from collections.abc import Mapping
 from typing import Any
 
 import arviz as az
 import numpy as np
+from scipy import stats
 
 from allolaw.answers.curvature_verdict import audit_evidence, judge_curvature
 from allolaw.answers.evidence import break_evidence, judge_break, loo_difference
@@ -112,6 +114,11 @@ def break_block(
     """
     ev = break_evidence(with_break, spec, delta=delta)
     out: dict[str, Any] = {"evidence": dataclasses.asdict(ev), "matched_model": matched_model}
+    # prior P(exponent_above > exponent): the prior difference is N(m_a − m_b, s_a² + s_b²)
+    pri = (spec.to_dict() if hasattr(spec, "to_dict") else dict(spec))["priors"]
+    out["prior_p_exponent_increases"] = float(stats.norm.sf(
+        0.0, float(pri["exponent_above"]["mean"]) - float(pri["exponent"]["mean"]),
+        math.hypot(float(pri["exponent_above"]["sd"]), float(pri["exponent"]["sd"]))))
     if without_break is None:
         out.update(loo_against_matched=None, verdict="unclear",
                    sentence=(f"No verdict: the matched model without the break "
@@ -132,6 +139,7 @@ def headline_block(
     hyp: Any,
     *,
     primary: str,
+    weights: Mapping[str, float] | None = None,
 ) -> dict[str, Any]:
     """Stacking weights and the exponent averaged over the fits, beside the primary model's.
 
@@ -144,6 +152,8 @@ def headline_block(
         The rows of ``hypotheses.csv`` (for the named values' posterior probabilities).
     primary
         The headline model.
+    weights
+        Stacking weights by model (default: :func:`allolaw.answers.stacking.stack_fits`).
 
     Returns
     -------
@@ -159,8 +169,7 @@ def headline_block(
     """
     if not fits:
         return {"applicable": False, "reason": "no fits"}
-    stack = stack_fits(fits)
-    weights = stack.as_dict()
+    weights = dict(weights) if weights is not None else stack_fits(fits).as_dict()
     draws = {m: np.asarray(f.posterior["exponent"].values, dtype=float).reshape(-1)
              for m, f in fits.items() if "exponent" in f.posterior}
     probs = _named_probs(hyp)
