@@ -20,6 +20,7 @@ import arviz as az
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
 from allolaw.config import config_sha256
 from allolaw.report import charts, figures, rendering, summary
@@ -440,3 +441,35 @@ def test_answer_of_a_breakpoint_primary_model_gives_both_exponents(tmp_path):
             f"{above[2]:.3f})") in answer
     # no check file for the primary model: said in the answer, not hidden
     assert f"(no check file): {BREAK}" in answer
+
+
+def test_forest_table_shows_species_count_size_range_and_unpooled_exponent(rendered):
+    config, _, html = rendered
+    clean = pd.read_csv(Path(config["results_dir"]) / "demo" / "clean.csv")
+    head, *body = _tables(html)["table-forest-family"]
+    assert head[0] == "family"
+    assert len(body) == clean["family"].nunique()
+    for row in body:
+        own = clean[clean["family"] == row[0]]
+        assert int(row[1]) == len(own)
+        # unpooled exponent: least-squares slope over the family's own species
+        # (scipy.stats.linregress as the reference)
+        slope = stats.linregress(own["log_size"], own["log_trait"]).slope
+        assert _close(row[3], slope)
+        low, high = row[2].split(" to ")
+        assert _close(low, float(np.exp(own["log_size"].min())))
+        assert _close(high, float(np.exp(own["log_size"].max())))
+
+
+def test_level_with_three_taxa_or_fewer_warns_with_the_width_ratio(rendered):
+    config, _, html = rendered
+    # 2 orders: warned; 4 families: not
+    warning = unescape(re.search(r'id="few-taxa-order">(.*?)</div>', html, re.S).group(1))
+    assert "Only 2 taxa at level order" in warning
+    idata = az.from_netcdf(Path(config["results_dir"]) / "demo" / PRIMARY / "posterior.nc")
+    draws = idata.posterior["exponent_sd__order"].values.ravel()
+    q05, q95 = np.quantile(draws, [0.05, 0.95])
+    # half-normal(0.25) prior: 90% interval from 0.25·Φ⁻¹(0.525) to 0.25·Φ⁻¹(0.975)
+    ratio = (q95 - q05) / (0.25 * (stats.norm.ppf(0.975) - stats.norm.ppf(0.525)))
+    assert f"{ratio:.2f} times as wide as its prior's" in warning
+    assert 'id="few-taxa-family"' not in html
