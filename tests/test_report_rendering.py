@@ -308,7 +308,9 @@ def test_model_average_and_sensitivity_are_shown_with_their_numbers(rendered):
                               re.S).group(1))
     assert "the answer changes." in sens
     assert "metabolic law 0.610 (0.350 to 0.660)" in sens
-    assert "not assessed (power-scaling failed: test)" in sens
+    # only the primary model in full; the others by name when their answer changes
+    assert "power-scaling failed" not in sens
+    assert "no other model's answer changes under power-scaling" in sens
 
 
 def test_break_and_local_exponent_figures_appear_for_the_models_that_have_them(rendered):

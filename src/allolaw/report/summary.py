@@ -109,7 +109,7 @@ def summarise_dataset(
     context["comparison_models"] = sorted(set(comp["model"])) if comp is not None else []
     context["curvature"] = curvature_section(curv)
     context["breakpoint"] = breakpoint_section(brk, comp)
-    context["average"] = average_section(head)
+    context["average"] = average_section(head, primary)
     context["worst_verdict"] = worst_verdict(model_info)
     context["headline"] = headline(
         primary, fits.get(primary), hyp, context["curvature"], context["breakpoint"],

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from allolaw.report.formatting import fmt
+from allolaw.report.formatting import fmt, unit_text
 
 __all__ = ["average_section", "breakpoint_section", "curvature_section"]
 
@@ -97,7 +97,7 @@ def breakpoint_section(obj: Any, comp: Any = None) -> dict[str, Any] | None:
         answer = (
             f"{best['verdict']} — model {best['model']} against its matched model without "
             f"the break ({best.get('matched_model')}): {best.get('sentence', '')} If there is "
-            f"a break, it lies at {fmt(size.get('median'))} {size.get('unit', '')} (90% "
+            f"a break, it lies at {fmt(size.get('median'))} {unit_text(size.get('unit', ''))} (90% "
             f"interval {fmt(size.get('q05'))} to {fmt(size.get('q95'))}); P(|difference| > "
             f"{fmt(ev.get('delta'))}) = {fmt(ev.get('p_abs_difference_above_delta'))} against "
             f"{fmt(ev.get('prior_p_abs_difference_above_delta'))} before any data."
@@ -112,10 +112,11 @@ def breakpoint_section(obj: Any, comp: Any = None) -> dict[str, Any] | None:
                      "when neither favours the break; unclear otherwise.")}
 
 
-def average_section(obj: Any) -> dict[str, Any] | None:
+def average_section(obj: Any, primary: str = "") -> dict[str, Any] | None:
     """Stacking weights, averaged exponent beside the primary one, and sensitivity sentences.
 
-    Reads ``headline.json``.
+    Reads ``headline.json``. The primary model's sensitivity comes first; ``changed`` names
+    the other models whose answer changes under power-scaling.
     """
     if obj is None:
         return None
@@ -137,6 +138,9 @@ def average_section(obj: Any) -> dict[str, Any] | None:
                   for name, (lo, hi) in sens["ranges"].items()]
         out["sensitivity"].append({"model": model, "changes": sens.get("changes"),
                                    "sentence": sens.get("sentence"), "ranges": ranges})
+    out["sensitivity"].sort(key=lambda s: s["model"] != primary)
+    out["changed"] = [s["model"] for s in out["sensitivity"]
+                      if s["changes"] and s["model"] != primary]
     return out
 
 
