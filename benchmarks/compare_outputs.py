@@ -4,6 +4,7 @@ Usage::
 
     python benchmarks/compare_outputs.py BASELINE_DIR NEW_DIR [--rename OLD=NEW ...]
         [--rename-key OLD=NEW ...] [--offset COLUMN=N ...] [--html exact|numbers] [--loose-text]
+        [--changed GLOB ...]
 
 Every CSV and JSON file must be byte for byte the same. Every HTML page must be the same apart
 from what a clock writes: the generation time (``YYYY-MM-DD HH:MM UTC``) and the run times the
@@ -18,8 +19,11 @@ For a change that renames columns or keys but must leave every number as it was:
 keys; ``--offset COLUMN=N`` adds N to the baseline's integer column COLUMN (after renaming; CSV
 and HTML tables), for a count that now starts at 1; ``--loose-text`` compares JSON strings by
 the numbers in them only (reworded sentences); ``--html numbers`` compares only the numbers in
-each page's text, and prints each run of numbers that differs with the words around it. Exits 1
-when anything differs.
+each page's text, and prints each run of numbers that differs with the words around it.
+``--changed GLOB`` (repeatable; matched against the path below the tree, e.g.
+``results/*/breakpoint.json``) names files whose content changes on purpose (new verdicts, new
+fits): they are listed and not compared, and may exist in one tree only; every other file is
+compared as above. Exits 1 when anything else differs.
 """
 
 from __future__ import annotations
@@ -27,6 +31,7 @@ from __future__ import annotations
 import argparse
 import csv
 import difflib
+import fnmatch
 import io
 import json
 import re
@@ -62,11 +67,18 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--offset", action="append", default=[], metavar="COLUMN=N")
     parser.add_argument("--html", choices=("exact", "numbers"), default="exact")
     parser.add_argument("--loose-text", action="store_true")
+    parser.add_argument("--changed", action="append", default=[], metavar="GLOB")
     args = parser.parse_args(argv)
     renames = [tuple(pair.split("=", 1)) for pair in args.rename]
     key_renames = [tuple(pair.split("=", 1)) for pair in args.rename_key]
     offsets = {k: int(v) for k, v in (pair.split("=", 1) for pair in args.offset)}
     files_a, files_b = _files(args.baseline), _files(args.new)
+    changed = {rel for rel in files_a | files_b
+               if any(rel.match(pattern) or fnmatch.fnmatch(str(rel), pattern)
+                      for pattern in args.changed)}
+    for rel in sorted(changed):
+        print(f"changed on purpose, not compared: {rel}")
+    files_a, files_b = files_a - changed, files_b - changed
     problems = [f"only in {args.baseline}: {rel}" for rel in sorted(files_a - files_b)]
     problems += [f"only in {args.new}: {rel}" for rel in sorted(files_b - files_a)]
     counts = {kind: 0 for kind in sorted(_KINDS)}

@@ -1,8 +1,8 @@
 """A hand-built results folder following the data contracts of DEVELOPERS.md (report tests).
 
 Every file (clean.csv, ledger.csv, prepared.json, posterior.nc, checks/<m>.json, hypotheses.csv,
-comparison.csv, curvature_audit.json, breakpoint.json) is written with known posterior draws;
-nothing here runs MCMC.
+comparison.csv, curvature_audit.json, breakpoint.json, headline.json) is written with known
+posterior draws; nothing here runs MCMC.
 """
 
 from __future__ import annotations
@@ -164,9 +164,17 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
         "loo_differences": [{"model_a": CURVED, "model_b": PRIMARY, "elpd_difference": -1.555,
                              "elpd_difference_se": 0.91, "better": PRIMARY}],
         "check_verdicts": {"linear": "pass", "curved": "fail"},
-        "verdict": "Little of the spread of taxon exponents is explained by curvature: the "
-                   "taxa differ in their own right. Adding a shared curvature term lowers the "
-                   "variance by 3%.",
+        # as allolaw.answers.verdicts.curvature_block writes it (numbers invented)
+        "four_way_verdict": "no between-taxon differences to explain",
+        "verdict": "No between-taxon differences to explain: P(SD of taxon exponents > 0.05) "
+                   "= 0.31 (prior 0.84; posterior SD of that SD 0.42 of its prior's).",
+        "evidence": {"level": "family", "n_taxa": 4, "sd_small": 0.05, "sd_contraction": 0.42,
+                     "p_spread": 0.31, "prior_p_spread": 0.84, "p_spread_after_curve": 0.29,
+                     "share": {"q05": -0.8, "median": 0.05, "q95": 0.7},
+                     "trend": {"q05": -0.02, "median": 0.004, "q95": 0.03},
+                     "twice_curvature": {"q05": 0.024, "median": 0.042, "q95": 0.058},
+                     "trend_minus_2c": {"q05": -0.07, "median": -0.038, "q95": 0.0},
+                     "within_size_share": 0.88, "loo_taxa_over_curve": None},
         "local_exponent": {CURVED: {"size_unit": "g", "grid": [{"size": 1.0, "median": 0.55}],
                                     "crossings": [{"name": "metabolic law", "value": 0.75,
                                                    "median_curve_crossing_size": 101.2,
@@ -187,7 +195,42 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
             "difference": {**summ, "median": 0.15},
             "delta": 0.03, "p_abs_difference_above_delta": 0.993, "p_exponent_increases": 0.99,
             "check_verdict": "not checked",
+            # as allolaw.answers.verdicts.break_block writes it (numbers invented)
+            "prior_p_exponent_increases": 0.5, "matched_model": BREAK + "__no_break",
+            "matched_check_verdict": "pass",
+            "evidence": {"bf_break": 2.4, "log_bf_break": 0.875, "prior_prob_break": 0.5,
+                         "posterior_prob_break": 0.706, "delta": 0.03,
+                         "prior_p_abs_difference_above_delta": 0.983,
+                         "p_abs_difference_above_delta": 0.993},
+            "loo_against_matched": {"elpd_diff": 1.2, "se": 1.5, "n_bad_k_with": 0,
+                                    "n_bad_k_without": 0},
+            "verdict": "not supported", "bayes_says": "undecided", "loo_says": "no break",
+            "sentence": "The break is not supported: neither the Bayes factor nor LOO favours "
+                        "it. Bayes factor 2.4 for a change of exponent at the break (posterior "
+                        "probability 0.71 from a prior 0.50); LOO gain of the break model 1.2 "
+                        "± 1.5 elpd.",
         }},
+    }))
+    # as allolaw.answers.verdicts.headline_block writes it (numbers invented)
+    (res / "headline.json").write_text(json.dumps({
+        "applicable": True, "stacking_weights": {PRIMARY: 0.83, CURVED: 0.17, BREAK: 0.0},
+        "averaged_exponent": {"mean": 0.741, "weighted_mean": 0.742, "q05": 0.70,
+                              "median": 0.740, "q95": 0.78},
+        "primary_exponent": {"model": PRIMARY, "mean": 0.745, "q05": 0.71, "median": 0.744,
+                             "q95": 0.78},
+        "disagree": True, "reasons": ["the most probable value differs"],
+        "sentence": "The headline model and the average over models disagree: the most "
+                    "probable value differs.",
+        "sensitivity": {
+            PRIMARY: {"top": "metabolic law", "base_probs": {"metabolic law": 0.61},
+                      "ranges": {"metabolic law": [0.35, 0.66]}, "changes": True,
+                      "reasons": ["likelihood α=0.5: P(metabolic law) moves from 0.61 to "
+                                  "0.35"],
+                      "unreliable": [], "sentence": "The answer depends on the prior or the "
+                      "data weighting: metabolic law is most probable (0.61), but likelihood "
+                      "α=0.5: P(metabolic law) moves from 0.61 to 0.35."},
+            CURVED: {"applicable": False, "reason": "power-scaling failed: test"},
+        },
     }))
     assert len(clean_species) == 24
     return config

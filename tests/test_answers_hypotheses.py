@@ -281,3 +281,49 @@ def test_a_prior_dependent_conclusion_is_flagged_and_stated():
     assert row["posterior_prob_prior_double"] == pytest.approx(exact, abs=0.02)
     assert row["conclusion_changes"]
     assert "conclusion changes" in row["note"]
+
+
+def test_curved_model_taxon_rows_use_each_taxons_local_exponent_at_its_mean_size():
+    # hand-built draws (invented): 4 genera at mean log sizes 1, 3, 5, 7 around x_ref = 4,
+    # straight-line exponent 0.75 each and one curvature c = 0.02, so the local exponents
+    # are 0.75 + 2·0.02·(x̄ − 4) = 0.63, 0.71, 0.79, 0.87 (Kolokotrones et al. 2010)
+    import arviz as az
+
+    rng = np.random.default_rng(12)
+    centres = np.array([1.0, 3.0, 5.0, 7.0])
+    x = np.repeat(centres, 5) + np.tile(np.linspace(-0.5, 0.5, 5), 4)
+    idx = np.repeat(np.arange(4), 5)
+    n = 2000
+    post = {"exponent": 0.75 + 0.01 * rng.standard_normal((1, n)),
+            "curvature": 0.02 + 0.002 * rng.standard_normal((1, n)),
+            "taxon_exponent__genus": 0.75 + 0.01 * rng.standard_normal((1, n, 4)),
+            "exponent_sd__genus": np.abs(0.05 + 0.01 * rng.standard_normal((1, n)))}
+    idata = az.from_dict(
+        posterior=post,
+        constant_data={"log_size_obs": x, "log_size_ref": np.array(4.0),
+                       "taxon_index__genus": idx},
+        coords={"genus": ["g0", "g1", "g2", "g3"]},
+        dims={"taxon_exponent__genus": ["genus"], "log_size_obs": ["species"],
+              "taxon_index__genus": ["species"]})
+    spec = {"name": "curved", "curvature": "shared", "breakpoint": "none",
+            "residuals": "normal",
+            "priors": {"exponent": {"mean": 1.0, "sd": 1.0}, "exponent_sd": {"sd": 0.25},
+                       "curvature": {"mean": 0.0, "sd": 0.25}}}
+    settings = {"exponents": [{"name": "three-quarters", "value": 0.75}],
+                "interval_halfwidth": 0.03}
+    rows = compare_hypotheses(idata, spec, settings)
+    taxa = rows[(rows["level"] == "genus") & (rows["hypothesis"] == "three-quarters")]
+    local = (post["taxon_exponent__genus"][0]
+             + 2 * post["curvature"][0][:, None] * (centres - 4.0)[None, :])
+    for j, (_, row) in enumerate(taxa.iterrows()):
+        expected = np.mean(np.abs(local[:, j] - 0.75) < 0.03)
+        assert row["interval_prob"] == pytest.approx(expected, abs=1e-12)
+        assert "local exponent at the taxon's mean observed size" in row["note"]
+        assert f"{np.exp(centres[j]):.4g}" in row["note"]
+    # the genera far from 0.75 locally (0.63 and 0.87) are not near it; the straight-line
+    # exponents (all 0.75) would have said they are
+    probs = taxa["interval_prob"].to_numpy()
+    assert probs[0] < 0.01
+    assert probs[3] < 0.01
+    pop = rows[(rows["level"].fillna("") == "") & (rows["hypothesis"] == "three-quarters")]
+    assert "slope at the reference size" in pop["note"].iloc[0]

@@ -20,6 +20,7 @@ import arviz as az
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
 from allolaw.checks.reading import read_posterior
 from allolaw.config import config_sha256
@@ -110,9 +111,19 @@ def test_headline_named_exponent_and_tables_equal_hypotheses_and_comparison_csv(
     pop = hyp[(hyp["model"] == PRIMARY) & (hyp["taxon"] == "") & (hyp["kind"] == "point")]
     best = pop.loc[pop["posterior_prob"].idxmax()]
     named = unescape(re.search(r'id="headline-named">(.*?)</li>', html, re.S).group(1))
-    assert best["hypothesis"] in named
-    shown = re.search(r"posterior probability <strong>([0-9.]+)</strong>", named).group(1)
-    assert _close(shown, best["posterior_prob"])
+    assert f"Most probable named exponent: <strong>{best['hypothesis']}</strong>" in named
+    shown = re.search(rf"{best['hypothesis']} ([0-9.]+) \(([0-9.]+)\)", named)
+    assert _close(shown.group(1), best["posterior_prob"])
+    # the prior probability beside it: equal weights over 3 named values + another value
+    assert _close(shown.group(2), 1 / 4)
+    assert "depends on that prior" in named
+    # the interval probability leads, before the point-hypothesis probabilities
+    answer = html[html.index('id="answer"'):html.index('id="data"')]
+    assert answer.index('id="headline-interval"') < answer.index('id="headline-named"')
+    interval = unescape(re.search(r'id="headline-interval">(.*?)</li>', html, re.S).group(1))
+    top = pop.loc[pop["interval_prob"].idxmax()]
+    assert f"<strong>{top['hypothesis']}</strong>" in interval
+    assert f"<strong>{top['interval_prob']:.3f}</strong>" in interval
 
     tables = _tables(html)
     head, *body = tables["table-hypotheses"]
@@ -258,32 +269,62 @@ def test_methods_paragraph_and_reproducibility_footer(rendered):
 def test_curvature_and_breakpoint_answers_follow_the_compare_outputs(rendered):
     _, _, html = rendered
     curv = unescape(re.search(r'id="headline-curvature">(.*?)</li>', html, re.S).group(1))
-    assert "Little of the spread of taxon exponents is explained by curvature" in curv
-    brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
-    # P(|diff| > δ) = 0.993 ≥ 0.95, breakpoint model absent from comparison.csv, not failed
-    assert "supported — model breakpoint puts the break at 298.4 g" in brk
-    assert "(90% interval 191.7 to 505.2)" in brk
-    assert "its fit has not been checked" in brk
+    assert "<strong>no between-taxon differences to explain.</strong>" in curv
+    paragraph = unescape(re.search(r'id="curvature-paragraph">(.*?)</p>', html, re.S).group(1))
+    assert "P(SD of taxon exponents > 0.05) = 0.31 (prior 0.84" in paragraph
     tables = _tables(html)
-    share = dict(tables["table-curvature"])
-    assert _close(share["share of between-taxon exponent variance explained by curvature "
-                        "(all levels)"], 0.031)
+    numbers = dict(tables["table-curvature"])
+    assert numbers["P(SD of taxon exponents > 0.05), taxa without curvature: posterior "
+                   "(prior)"] == "0.310 (0.840)"
+    assert numbers["share of the spread removed by curvature, median (90% interval)"] == (
+        "0.050 (-0.800 to 0.700)")
+    assert numbers["2c, the trend one curved law predicts"] == "0.042 (0.024 to 0.058)"
+    assert numbers["share of the variance of log size within taxa"] == "0.880"
     assert tables["table-crossings"][1][0] == CURVED
 
+    brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
+    assert "not supported — model breakpoint against its matched model without the break " \
+           "(breakpoint__no_break)" in brk
+    assert "Bayes factor 2.4" in brk
+    # every posterior probability beside its prior probability
+    assert "P(|difference| > 0.030) = 0.993 against 0.983 before any data" in brk
+    head, row = tables["table-breakpoint"]
+    cells = dict(zip(head, row, strict=True))
+    assert cells["P(change): posterior (prior)"] == "0.706 (0.500)"
+    assert cells["P(|difference| > δ): posterior (prior)"] == "0.993 (0.983)"
+    assert cells["P(exponent increases): posterior (prior)"] == "0.990 (0.500)"
+    assert cells["LOO gain over the matched model ± standard error"] == "1.200 ± 1.500"
+    assert cells["verdict"] == "not supported"
 
-def test_breakpoint_not_supported_when_loo_prefers_another_model_by_over_2_se(tmp_path):
+
+def test_breakpoint_supported_only_as_the_compare_stage_says(tmp_path):
     config = build_results(tmp_path)
     res = Path(config["results_dir"]) / "demo"
-    comp = pd.read_csv(res / "comparison.csv")
-    comp.loc[len(comp)] = {"dataset": "demo", "model": BREAK, "place": 3, "elpd_loo": -20.0,
-                           "elpd_loo_se": 3.0, "elpd_gap_to_best": 7.655, "elpd_gap_se": 2.0,
-                           "p_loo": 8.0, "stacking_weight": 0.0, "n_high_pareto_k": 0,
-                           "loo_caution": False}
-    comp.to_csv(res / "comparison.csv", index=False)
+    brk = json.loads((res / "breakpoint.json").read_text())
+    brk["models"][BREAK].update(verdict="supported", sentence="Both favour it.")
+    (res / "breakpoint.json").write_text(json.dumps(brk))
     html = rendering.render_dataset_report(config, "demo").read_text(encoding="utf-8")
-    brk = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
-    assert "not supported" in brk
-    assert "LOO prefers another model by more than 2 standard errors of the elpd gap" in brk
+    answer = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
+    assert "<strong>supported — model breakpoint" in answer
+    del brk["models"][BREAK]["verdict"]
+    (res / "breakpoint.json").write_text(json.dumps(brk))
+    html = rendering.render_dataset_report(config, "demo").read_text(encoding="utf-8")
+    answer = unescape(re.search(r'id="headline-breakpoint">(.*?)</li>', html, re.S).group(1))
+    assert "no verdict in this file" in answer
+
+
+def test_model_average_and_sensitivity_are_shown_with_their_numbers(rendered):
+    _, _, html = rendered
+    avg = unescape(re.search(r'id="headline-average">(.*?)</li>', html, re.S).group(1))
+    assert "exponent <strong>0.740</strong> (90% interval 0.700 to 0.780) beside 0.744" in avg
+    assert "disagree: the most probable value differs" in avg
+    sens = unescape(re.search(r'id="headline-sensitivity">(.*?)</ul></li>', html,
+                              re.S).group(1))
+    assert "the answer changes." in sens
+    assert "metabolic law 0.610 (0.350 to 0.660)" in sens
+    # only the primary model in full; the others by name when their answer changes
+    assert "power-scaling failed" not in sens
+    assert "no other model's answer changes under power-scaling" in sens
 
 
 def test_break_and_local_exponent_figures_appear_for_the_models_that_have_them(rendered):
@@ -416,3 +457,35 @@ def test_answer_of_a_breakpoint_primary_model_gives_both_exponents(tmp_path):
             f"{above[2]:.3f})") in answer
     # no check file for the primary model: said in the answer, not hidden
     assert f"(no check file): {BREAK}" in answer
+
+
+def test_forest_table_shows_species_count_size_range_and_unpooled_exponent(rendered):
+    config, _, html = rendered
+    clean = pd.read_csv(Path(config["results_dir"]) / "demo" / "clean.csv")
+    head, *body = _tables(html)["table-forest-family"]
+    assert head[0] == "family"
+    assert len(body) == clean["family"].nunique()
+    for row in body:
+        own = clean[clean["family"] == row[0]]
+        assert int(row[1]) == len(own)
+        # unpooled exponent: least-squares slope over the family's own species
+        # (scipy.stats.linregress as the reference)
+        slope = stats.linregress(own["log_size"], own["log_trait"]).slope
+        assert _close(row[3], slope)
+        low, high = row[2].split(" to ")
+        assert _close(low, float(np.exp(own["log_size"].min())))
+        assert _close(high, float(np.exp(own["log_size"].max())))
+
+
+def test_level_with_three_taxa_or_fewer_warns_with_the_width_ratio(rendered):
+    config, _, html = rendered
+    # 2 orders: warned; 4 families: not
+    warning = unescape(re.search(r'id="few-taxa-order">(.*?)</div>', html, re.S).group(1))
+    assert "Only 2 taxa at level order" in warning
+    idata = az.from_netcdf(Path(config["results_dir"]) / "demo" / PRIMARY / "posterior.nc")
+    draws = idata.posterior["exponent_sd__order"].values.ravel()
+    q05, q95 = np.quantile(draws, [0.05, 0.95])
+    # half-normal(0.25) prior: 90% interval from 0.25·Φ⁻¹(0.525) to 0.25·Φ⁻¹(0.975)
+    ratio = (q95 - q05) / (0.25 * (stats.norm.ppf(0.975) - stats.norm.ppf(0.525)))
+    assert f"{ratio:.2f} times as wide as its prior's" in warning
+    assert 'id="few-taxa-family"' not in html

@@ -13,6 +13,7 @@ __all__ = [
     "clean_path",
     "comparison_path",
     "curvature_audit_path",
+    "headline_path",
     "hypotheses_path",
     "index_report_path",
     "ledger_path",
@@ -61,6 +62,10 @@ def curvature_audit_path(results: str | Path, dataset: str) -> Path:
 
 def breakpoint_path(results: str | Path, dataset: str) -> Path:
     return Path(results) / dataset / "breakpoint.json"
+
+
+def headline_path(results: str | Path, dataset: str) -> Path:
+    return Path(results) / dataset / "headline.json"
 
 
 def report_path(reports: str | Path, dataset: str) -> Path:

@@ -4,7 +4,7 @@ import shlex
 import sys
 
 from allolaw.config import validate_config
-from allolaw.model.spec import load_spec
+from allolaw.model.spec import NO_BREAK_SUFFIX, load_spec, models_to_fit
 
 # The package fills defaults from the same schema Snakemake validated against.
 CONFIG = validate_config(dict(config), source="snakemake config")
@@ -35,7 +35,8 @@ def dataset_sources(wildcards):
 
 
 def model_spec(wildcards):
-    return f"{CONFIG['models_dir']}/{wildcards.model}.yaml"
+    # a matched model without break is derived from its breakpoint spec's file
+    return f"{CONFIG['models_dir']}/{wildcards.model.removesuffix(NO_BREAK_SUFFIX)}.yaml"
 
 
 def fit_priority(wildcards):
@@ -44,12 +45,12 @@ def fit_priority(wildcards):
 
 
 def dataset_posteriors(wildcards):
-    models = CONFIG["datasets"][wildcards.dataset]["models"]
+    models = models_to_fit(CONFIG["models_dir"], CONFIG["datasets"][wildcards.dataset]["models"])
     return [f"{RESULTS}/{wildcards.dataset}/{m}/posterior.nc" for m in models]
 
 
 def dataset_checks(wildcards):
-    models = CONFIG["datasets"][wildcards.dataset]["models"]
+    models = models_to_fit(CONFIG["models_dir"], CONFIG["datasets"][wildcards.dataset]["models"])
     return [f"{RESULTS}/{wildcards.dataset}/checks/{m}.json" for m in models]
 
 

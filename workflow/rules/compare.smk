@@ -14,6 +14,7 @@ rule compare_models:
         hypotheses=f"{RESULTS}/{{dataset}}/hypotheses.csv",
         curvature=f"{RESULTS}/{{dataset}}/curvature_audit.json",
         breakpoint=f"{RESULTS}/{{dataset}}/breakpoint.json",
+        headline=f"{RESULTS}/{{dataset}}/headline.json",
         html=f"{REPORTS}/{{dataset}}.html",
     log:
         f"{LOGS}/{{dataset}}/compare.log",

@@ -54,6 +54,7 @@ from scipy import special, stats
 
 from allolaw.answers.density import DensityEstimate, exponent_density
 from allolaw.answers.draws import flat, scalar
+from allolaw.answers.local_exponent import local_taxon_exponent
 from allolaw.answers.node_tree import Prior, Tree, node_prior, spec_dict, tree_nodes
 
 __all__ = ["COLUMNS", "compare_hypotheses"]
@@ -147,15 +148,20 @@ def compare_hypotheses(
     note = _base_note(spec_d, idata)
     rows: list[dict[str, Any]] = []
     for node in tree_nodes(tree):
-        est = exponent_density(idata, spec_d, node, density=density)
-        prior_node = node_prior(node, tree, m0, s0, sd_scale)
+        local = local_taxon_exponent(idata, spec_d, node, tree)
+        if local is None:
+            est = exponent_density(idata, spec_d, node, density=density)
+            prior_node = node_prior(node, tree, m0, s0, sd_scale)
+        else:
+            est, prior_node, local_note = local
         block = _hypothesis_block(
             est, prior_node, named, other_weight, delta, bounds, weights, weight_k,
         )
         for row in block:
             row.update(model=model_name, parameter=node.parameter, level=node.level,
                        taxon=node.taxon, method=est.method)
-            row["note"] = "; ".join(s for s in (note, row.pop("_note", "")) if s)
+            node_note = local_note if local is not None else note
+            row["note"] = "; ".join(s for s in (node_note, row.pop("_note", "")) if s)
             rows.append(row)
     table = pd.DataFrame(rows)
     table["dataset"] = str(idata.attrs.get("dataset", ""))

@@ -139,8 +139,10 @@ def power_scale_sensitivity(
     unreliable = tuple(f"{a.component} α={a.alpha:g} (Pareto k {a.pareto_k:.2f}, "
                        f"ESS {a.ess:.0f})"
                        for a in scaled if not a.reliable)
-    ranges = {n: (min([base.probs[n]] + [a.probs[n] for a in scaled]),
-                  max([base.probs[n]] + [a.probs[n] for a in scaled])) for n in base.probs}
+    # ranges over the reliable scaled answers only (unreliable ones are listed instead)
+    trusted = [a for a in scaled if a.reliable]
+    ranges = {n: (min([base.probs[n]] + [a.probs[n] for a in trusted]),
+                  max([base.probs[n]] + [a.probs[n] for a in trusted])) for n in base.probs}
     return Sensitivity(base=base, scaled=tuple(scaled), ranges=ranges, changes=changes,
                        reasons=tuple(reasons), unreliable=unreliable,
                        sentence=_sentence(base, changes, reasons, unreliable, ranges))

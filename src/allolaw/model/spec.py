@@ -20,7 +20,11 @@ import yaml
 
 from allolaw.errors import UserError
 
-__all__ = ["ModelSpec", "describe_spec", "load_spec", "parse_spec", "spec_schema"]
+__all__ = ["NO_BREAK_SUFFIX", "ModelSpec", "describe_spec", "load_spec", "matched_no_break",
+           "models_to_fit", "parse_spec", "spec_schema"]
+
+#: Suffix of the matched model without break derived from a breakpoint spec.
+NO_BREAK_SUFFIX = "__no_break"
 
 
 @dataclass(frozen=True)
@@ -108,7 +112,17 @@ def load_spec(models_dir: str | Path, name: str) -> ModelSpec:
         If the file is missing or not YAML, or a key is unknown or has a bad value; the
         message names the file, the key and the value.
     """
+    base = name.removesuffix(NO_BREAK_SUFFIX)
     path = Path(models_dir) / f"{name}.yaml"
+    if base != name and not path.is_file():
+        spec = load_spec(models_dir, base)
+        raw = spec.to_dict()
+        raw.pop("name", None)
+        raw["breakpoint"] = "none"
+        raw["description"] = (f"The spec '{base}' without its break: same taxon terms and "
+                              "priors, one straight law (the matched model for the break's "
+                              "LOO comparison).")
+        return parse_spec(raw, name=name, source=f"{path} (derived from {base}.yaml)")
     if not path.is_file():
         known = sorted(p.stem for p in Path(models_dir).glob("*.yaml"))
         msg = f"model spec not found: {path} (known specs: {', '.join(known) or 'none'})"
@@ -119,6 +133,32 @@ def load_spec(models_dir: str | Path, name: str) -> ModelSpec:
         msg = f"{path}: not valid YAML: {err}"
         raise UserError(msg) from err
     return parse_spec(raw if raw is not None else {}, name=name, source=str(path))
+
+
+def matched_no_break(name: str) -> str:
+    """Name of the spec derived from breakpoint spec ``name`` with ``breakpoint: none``.
+
+    :func:`load_spec` builds it from ``<name>.yaml`` when no file of that name exists.
+    """
+    return f"{name}{NO_BREAK_SUFFIX}"
+
+
+def models_to_fit(models_dir: str | Path, models: list[str]) -> list[str]:
+    """The listed models plus, after each breakpoint model, its matched model without break.
+
+    The workflow fits this list, and the compare stage reads it, so a dataset that lists a
+    breakpoint model is always compared with the same model without the break. A name without
+    a spec file is kept as it is (the fit stage says that the spec is missing).
+    """
+    out: list[str] = []
+    for name in models:
+        out.append(name)
+        derived = matched_no_break(name)
+        if not (Path(models_dir) / f"{name}.yaml").is_file() or derived in models:
+            continue
+        if load_spec(models_dir, name).breakpoint != "none":
+            out.append(derived)
+    return out
 
 
 def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:

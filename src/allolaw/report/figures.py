@@ -31,6 +31,7 @@ from markupsafe import Markup
 from allolaw.config import dataset_config
 from allolaw.model.law import TAXON_TERMS, expected_log_trait
 from allolaw.report import charts
+from allolaw.report import forest as forest_notes
 from allolaw.report.formatting import fmt, truthy, unit_text
 from allolaw.report.svg import Band, Series
 
@@ -202,6 +203,8 @@ def _forest_figures(idata: Any, clean: pd.DataFrame, levels: list[str],
                            for r in rows}
         forest.append({
             "level": level,
+            "taxa": forest_notes.taxon_rows(clean, level, labels, qs),
+            "warning": forest_notes.few_taxa_warning(idata, level, len(labels)),
             "svg": _svg(charts.forest_svg(
                 rows, x_label=f"exponent of each {level} (median, 90% interval)",
                 marks=named, population=tuple(pop),

@@ -1,4 +1,4 @@
-"""The page's sections built from the results: data, models, curvature audit, breakpoint.
+"""The page's sections built from the results: data, models, tables (verdicts: report.verdicts).
 """
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from allolaw.report.figures import ppc_figures
-from allolaw.report.formatting import STATUS_ORDER, as_float, fmt, isnan, truthy
+from allolaw.report.formatting import STATUS_ORDER, fmt, isnan, truthy
 
 log = logging.getLogger(__name__)
 
@@ -186,131 +186,6 @@ def table_rows(
     }
     columns = [c for c in frame.columns if c not in same and c not in hidden]
     return {"columns": columns, "rows": records, "same": same}
-
-
-def curvature_section(obj: Any) -> dict[str, Any] | None:
-    """The curvature audit as shown: its verdict sentence, a short answer and its numbers.
-
-    Reads ``curvature_audit.json`` as the compare stage writes it (``applicable``, ``reason``
-    or ``verdict``, ``share_explained_by_curvature``, ``curvature``, ``p_curvature_positive``,
-    ``loo_differences``, ``local_exponent``); other keys are listed as they are.
-    """
-    if obj is None:
-        return None
-    if not isinstance(obj, dict):
-        return {"answer": str(obj), "text": [], "numbers": [], "loo": [], "crossings": []}
-    if not obj.get("applicable", True):
-        reason = str(obj.get("reason", "no reason given"))
-        crossings = _crossings(obj)
-        return {"answer": f"not audited ({reason})", "text": [], "numbers": [], "loo": [],
-                "crossings": crossings}
-    verdict = str(obj.get("verdict") or obj.get("conclusion") or "")
-    answer = verdict.split(". ")[0].rstrip(".") + "." if verdict else (
-        "the audit gives no verdict sentence")
-    numbers: list[tuple[str, Any]] = []
-    share = obj.get("share_explained_by_curvature") or {}
-    if "all_levels" in share:
-        numbers.append(("share of between-taxon exponent variance explained by curvature "
-                        "(all levels)", share["all_levels"]))
-    for level, value in (share.get("by_level") or {}).items():
-        numbers.append((f"share explained at level {level}", value))
-    curv = obj.get("curvature") or {}
-    if "median" in curv:
-        numbers.append(("curvature c, median (90% interval)",
-                        f"{fmt(curv['median'])} ({fmt(curv.get('q05'))} to "
-                        f"{fmt(curv.get('q95'))})"))
-    if "p_curvature_positive" in obj:
-        numbers.append(("P(curvature > 0)", obj["p_curvature_positive"]))
-    for key, value in (obj.get("check_verdicts") or {}).items():
-        numbers.append((f"check verdict of the {key} model", value))
-    skip = {"applicable", "verdict", "conclusion", "reason", "share_explained_by_curvature",
-            "curvature", "p_curvature_positive", "loo_differences", "local_exponent",
-            "check_verdicts", "models", "exponent_sd", "mean_exponent_variance", "curvature_sd"}
-    numbers += [(k, v) for k, v in _flatten({k: v for k, v in obj.items() if k not in skip})]
-    for level, by_model in (obj.get("exponent_sd") or {}).items():
-        for key, summ in by_model.items():
-            if isinstance(summ, dict) and "median" in summ:
-                numbers.append((f"exponent SD at {level}, {key} model",
-                                f"{fmt(summ['median'])} ({fmt(summ.get('q05'))} to "
-                                f"{fmt(summ.get('q95'))})"))
-    return {"answer": answer, "text": [verdict] if verdict else [], "numbers": numbers,
-            "loo": list(obj.get("loo_differences") or []), "crossings": _crossings(obj)}
-
-
-def _crossings(obj: dict[str, Any]) -> list[dict[str, Any]]:
-    rows = []
-    for model, local in (obj.get("local_exponent") or {}).items():
-        for c in (local or {}).get("crossings", []):
-            rows.append({"model": model, "unit": local.get("size_unit", ""), **c})
-    return rows
-
-
-# Rule of thumb for calling a break supported (common practice, no source): the exponents on
-# the two sides differ by more than δ with probability ≥ 0.95, the breakpoint model is not
-# worse than the best by LOO by more than 2 SE of the difference, and its checks did not fail.
-_BREAK_P_MIN = 0.95
-_BREAK_GAP_SES = 2.0  # standard errors of the elpd gap (rule of thumb)
-
-
-def breakpoint_section(obj: Any, comp: pd.DataFrame | None) -> dict[str, Any] | None:
-    """The breakpoint summary as shown, with a supported / not supported answer.
-
-    Reads ``breakpoint.json`` as the compare stage writes it (``applicable``, ``reason`` or
-    ``models: {name: {break_size, exponent_below, exponent_above, difference, delta,
-    p_abs_difference_above_delta, p_exponent_increases, check_verdict}}``) and the model's
-    row of ``comparison.csv``.
-    """
-    if obj is None:
-        return None
-    if not isinstance(obj, dict):
-        return {"answer": str(obj), "supported": None, "rows": [], "rule": None}
-    if not obj.get("applicable", True) or not obj.get("models"):
-        reason = str(obj.get("reason", "no breakpoint model"))
-        return {"answer": f"not assessed ({reason})", "supported": None, "rows": [],
-                "rule": None}
-    rows = []
-    for model, m in obj["models"].items():
-        row: dict[str, Any] = {"model": model, **m}
-        loo = None
-        if comp is not None and "model" in comp.columns:
-            match = comp[comp["model"] == model]
-            if not match.empty:
-                loo = match.iloc[0].to_dict()
-        row["loo"] = loo
-        p = as_float(m.get("p_abs_difference_above_delta"))
-        checks_ok = m.get("check_verdict") != "fail"
-        loo_ok = None
-        if loo is not None:
-            gap = as_float(loo.get("elpd_gap_to_best"))
-            gap_se = as_float(loo.get("elpd_gap_se"))
-            if gap is not None and gap_se is not None:
-                loo_ok = abs(gap) <= _BREAK_GAP_SES * gap_se or abs(gap) == 0
-        row["supported"] = (p is not None and p >= _BREAK_P_MIN and checks_ok
-                            and loo_ok is not False)
-        row["loo_ok"] = loo_ok
-        rows.append(row)
-    best = rows[0]
-    size = best.get("break_size") or {}
-    unit = size.get("unit", "")
-    verdict = "supported" if best["supported"] else "not supported"
-    answer = (
-        f"{verdict} — model {best['model']} puts the break at {fmt(size.get('median'))} "
-        f"{unit} (90% interval {fmt(size.get('q05'))} to {fmt(size.get('q95'))}); exponent "
-        f"{fmt((best.get('exponent_below') or {}).get('median'))} below and "
-        f"{fmt((best.get('exponent_above') or {}).get('median'))} above; P(|difference| > "
-        f"{fmt(best.get('delta'))}) = {fmt(best.get('p_abs_difference_above_delta'))}"
-    )
-    if best["loo_ok"] is False:
-        answer += "; LOO prefers another model by more than 2 standard errors of the elpd gap"
-    if best.get("check_verdict") == "fail":
-        answer += "; its checks failed"
-    elif best.get("check_verdict") in (None, "", "not checked", "missing"):
-        answer += "; its fit has not been checked"
-    return {"answer": answer + ".", "supported": best["supported"], "rows": rows,
-            "rule": (f"A break is called supported when P(|difference| > δ) ≥ {_BREAK_P_MIN}, "
-                     f"the breakpoint model's elpd gap to the best model by LOO is within "
-                     f"{_BREAK_GAP_SES:g} standard errors, and its checks did not fail (a rule "
-                     "of thumb, not a test).")}
 
 
 def _flatten(obj: Any, prefix: str = "") -> list[tuple[str, Any]]:

@@ -15,17 +15,17 @@ import pandas as pd
 
 from allolaw import __version__, paths
 from allolaw.config import dataset_config, hypotheses_config
+from allolaw.model.spec import models_to_fit
 from allolaw.report.figures import build_figures
 from allolaw.report.formatting import fmt, now, pct, unit_text
 from allolaw.report.sections import (
-    breakpoint_section,
-    curvature_section,
     data_section,
     model_section,
     table_rows,
     worst_verdict,
 )
 from allolaw.report.text import footer, headline, methods
+from allolaw.report.verdicts import average_section, breakpoint_section, curvature_section
 
 __all__ = ["summarise_dataset"]
 
@@ -54,8 +54,8 @@ def summarise_dataset(
     ds = dataset_config(config, dataset)
     results = config["results_dir"]
     missing: list[str] = []
-    models = list(ds["models"])
-    primary = ds.get("primary_model") or models[-1]
+    primary = ds.get("primary_model") or list(ds["models"])[-1]
+    models = models_to_fit(config["models_dir"], list(ds["models"]))
 
     prepared = _read_json(paths.prepared_path(results, dataset), missing, "prepared.json",
                           "run 'allolaw prepare'")
@@ -67,6 +67,8 @@ def summarise_dataset(
                       "curvature_audit.json", "run 'allolaw compare'")
     brk = _read_json(paths.breakpoint_path(results, dataset), missing, "breakpoint.json",
                      "run 'allolaw compare'")
+    head = _read_json(paths.headline_path(results, dataset), missing, "headline.json",
+                      "run 'allolaw compare'")
 
     fits = {}
     model_info = []
@@ -108,10 +110,11 @@ def summarise_dataset(
     context["comparison_models"] = sorted(set(comp["model"])) if comp is not None else []
     context["curvature"] = curvature_section(curv)
     context["breakpoint"] = breakpoint_section(brk, comp)
+    context["average"] = average_section(head, primary)
     context["worst_verdict"] = worst_verdict(model_info)
     context["headline"] = headline(
         primary, fits.get(primary), hyp, context["curvature"], context["breakpoint"],
-        model_info, units,
+        model_info, units, average=context["average"],
         delta=hypotheses_config(config, dataset).get("interval_halfwidth"),
     )
     context["methods"] = methods(config, dataset, model_info, hyp)

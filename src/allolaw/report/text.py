@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import math
 import platform
 from importlib import metadata
 from pathlib import Path
@@ -70,6 +71,7 @@ def headline(
     units: dict[str, Any],
     *,
     delta: float | None = None,
+    average: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     out: dict[str, Any] = {"primary": primary}
     sentences = []
@@ -91,26 +93,12 @@ def headline(
     else:
         out["exponent"] = None
         sentences.append(f"No fit of the primary model '{primary}' is available.")
-    out["named"] = None
-    if hyp is not None and not hyp.empty:
-        pop = hyp[(hyp["model"] == primary) & (hyp["parameter"] == "exponent")
-                  & (hyp["taxon"].fillna("").astype(str) == "")]
-        points = pop[pop["kind"] == "point"]
-        if not points.empty:
-            best = points.loc[points["posterior_prob"].astype(float).idxmax()]
-            other = pop[pop["kind"] == "other"]
-            out["named"] = {
-                "hypothesis": str(best["hypothesis"]),
-                "value": float(best["value"]),
-                "posterior_prob": float(best["posterior_prob"]),
-                "interval_prob": as_float(best.get("interval_prob")),
-                "other_prob": float(other["posterior_prob"].iloc[0]) if not other.empty else None,
-            }
-            sentences.append(
-                f"The most probable named exponent is {best['hypothesis']} "
-                f"({float(best['value']):g}) with posterior probability "
-                f"{float(best['posterior_prob']):.3f}."
-            )
+    out["named"] = _named(hyp, primary)
+    if out["named"] is not None:
+        sentences.append(out["named"]["sentence"])
+    out["average"] = average
+    if average is not None and average.get("sentence"):
+        sentences.append(str(average["sentence"]))
     out["delta"] = delta
     out["curvature"] = curvature
     out["breakpoint"] = breakpoint
@@ -121,6 +109,51 @@ def headline(
         sentences.append("Failed checks: " + ", ".join(out["failed"]) + ".")
     out["sentence"] = " ".join(sentences)
     return out
+
+
+#: What a point-hypothesis probability means, said once beside those probabilities.
+POINT_MEANING = (
+    "A point-hypothesis probability is the posterior probability that the exponent is exactly "
+    "that value rather than free (\u201canother value\u201d), given the prior weights of the "
+    "named values and the prior of the free exponent; it depends on that prior, and says which "
+    "value the data favour, not that the exponent equals it."
+)
+
+
+def _named(hyp: pd.DataFrame | None, primary: str) -> dict[str, Any] | None:
+    """Interval probabilities first, then the point-hypothesis probabilities with priors."""
+    if hyp is None or hyp.empty:
+        return None
+    pop = hyp[(hyp["model"] == primary) & (hyp["parameter"] == "exponent")
+              & (hyp["taxon"].fillna("").astype(str) == "")]
+    points = pop[pop["kind"] == "point"]
+    if points.empty:
+        return None
+    best = points.loc[points["posterior_prob"].astype(float).idxmax()]
+    other = pop[pop["kind"] == "other"]
+    weights = pd.concat([points, other])["prior_weight"].astype(float) \
+        if "prior_weight" in pop.columns else None
+    total = float(weights.sum()) if weights is not None else math.nan
+    rows = [{"hypothesis": str(r["hypothesis"]),
+             "value": as_float(r["value"]),
+             "interval_prob": as_float(r.get("interval_prob")),
+             "posterior_prob": float(r["posterior_prob"]),
+             "prior_prob": (float(r["prior_weight"]) / total
+                            if weights is not None and total > 0 else None)}
+            for _, r in pd.concat([points, other]).iterrows()]
+    intervals = [r for r in rows if r["interval_prob"] is not None]
+    top = max(intervals, key=lambda r: r["interval_prob"]) if intervals else None
+    lead = (f"The exponent lies within ±δ of {top['hypothesis']} ({fmt(top['value'])}) with "
+            f"probability {top['interval_prob']:.3f}" if top else "")
+    sentence = (f"{lead}; the most probable named value is {best['hypothesis']} "
+                f"({float(best['value']):g}), point-hypothesis probability "
+                f"{float(best['posterior_prob']):.3f}.").lstrip("; ")
+    return {"hypothesis": str(best["hypothesis"]), "value": float(best["value"]),
+            "posterior_prob": float(best["posterior_prob"]),
+            "interval_prob": as_float(best.get("interval_prob")),
+            "other_prob": float(other["posterior_prob"].iloc[0]) if not other.empty else None,
+            "interval_top": top, "rows": rows, "meaning": POINT_MEANING,
+            "sentence": sentence[0].upper() + sentence[1:]}
 
 
 def methods(
