@@ -43,6 +43,7 @@ class ModelSpec:
     covariates: list[dict[str, Any]]
     priors: dict[str, dict[str, Any]]
     source: str = field(default="", compare=False)
+    within_species: str = "together"
 
     def to_dict(self) -> dict[str, Any]:
         """Return the spec as plain data (the keys of the YAML file plus ``name``)."""
@@ -58,6 +59,7 @@ class ModelSpec:
             "residuals": self.residuals,
             "covariates": copy.deepcopy(self.covariates),
             "priors": copy.deepcopy(self.priors),
+            "within_species": self.within_species,
         }
 
     def to_json(self) -> str:
@@ -158,6 +160,7 @@ def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:
         covariates=spec["covariates"],
         priors=spec["priors"],
         source=source,
+        within_species=spec["within_species"],
     )
 
 
