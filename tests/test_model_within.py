@@ -9,7 +9,7 @@ import pytest
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
 from allolaw.model.spec import parse_spec
-from allolaw.model.within import split_log_size
+from allolaw.model.within import split_log_size, within_term
 from allolaw.testing import as_clean_table, quick_sample
 from allolaw.testing.individuals import simulate_individuals
 
@@ -90,3 +90,57 @@ def test_within_1_and_between_0_75_are_recovered_and_told_apart():
         assert low < truth < high, (name, low, high)
     difference = idata.posterior["within_exponent"] - idata.posterior["exponent"]
     assert float((difference > 0).mean()) > 0.95
+
+
+@pytest.mark.parametrize("order", ["first_appearance", "reversed"])
+def test_within_exponent_by_species_maps_each_row_to_its_own_species(order):
+    import pymc as pm
+
+    sim = simulate_individuals(n_species=5, per_species=3, seed=2)
+    table = _table(sim)
+    spec = _spec(within_species="separate_by_species")
+    split = split_log_size(table, spec, levels=LEVELS)
+    labels = list(dict.fromkeys(sim["species"]))
+    coords = {"species": list(table["species"])}
+    if order == "reversed":  # the level's coords exist already, in another order
+        coords["species_level"] = labels[::-1]
+    with pm.Model(coords=coords) as model:
+        part = within_term(model, split, spec)
+    coord_labels = list(model.coords["species_level"])
+    point = model.initial_point()
+    point["within_exponent"] = 0.5
+    point["within_exponent_sd__species_level_log__"] = 0.0  # SD 1
+    point["within_exponent_z__species_level"] = np.arange(5.0)
+    (on_values,) = model.replace_rvs_by_values([part])  # the point's values, not draws
+    values = model.compile_fn(on_values, inputs=model.value_vars,
+                              on_unused_input="ignore")(point)
+    slope = 0.5 + np.array([coord_labels.index(s) for s in sim["species"]], dtype=float)
+    np.testing.assert_allclose(values, slope * split.deviation, rtol=1e-12)
+    assert spec.cost_rank > _spec().cost_rank
+
+
+def test_by_species_model_builds_with_and_without_taxon_terms():
+    table = _table(simulate_individuals(n_species=5, per_species=3, seed=2))
+    for taxa in ({"levels": "none"}, {"levels": "all", "vary": ["intercept"]}):
+        spec = _spec(within_species="separate_by_species", taxa=taxa)
+        model = build_model(table, spec, levels=LEVELS, log_reference_size=0.0)
+        assert "taxon_within_exponent__species_level" in model.named_vars
+        assert len(model.coords["species_level"]) == 5
+
+
+@pytest.mark.mcmc
+def test_within_exponents_varying_by_species_are_partially_pooled_and_recovered():
+    # Invented individuals with known truth: within exponents normal(1.0, 0.3) by species.
+    sim = simulate_individuals(n_species=12, per_species=12, within_sd=0.3, within_spread=0.5,
+                               seed=4)
+    spec = _spec(within_species="separate_by_species",
+                 taxa={"levels": "all", "vary": ["intercept"]})
+    model = build_model(_table(sim), spec, levels=LEVELS, log_reference_size=0.0)
+    idata = quick_sample(model, seed=8, draws=400, warmup=400)
+    post = idata.posterior["taxon_within_exponent__species_level"]
+    estimate = post.mean(("chain", "draw")).to_series()
+    truth = sim.groupby("species")["true_within_exponent"].first()
+    assert np.corrcoef(estimate[truth.index], truth)[0, 1] > 0.8
+    low, high = np.quantile(idata.posterior["within_exponent_sd__species_level"].values,
+                            [0.05, 0.95])
+    assert low < 0.3 < high

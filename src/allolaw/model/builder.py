@@ -27,7 +27,7 @@ import pytensor.tensor as pt
 from allolaw.model.inputs import read_inputs
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
-from allolaw.model.within import split_log_size
+from allolaw.model.within import split_log_size, within_term
 
 __all__ = ["TRAIT", "build_model"]
 
@@ -130,13 +130,11 @@ def build_model(
                    "curvature": centred_size**2}
 
         # --- within/between split (model/within.py): the exponent acts on group means ---
-        if spec.within_species == "separate":
+        if spec.within_species in ("separate", "separate_by_species"):
             split = split_log_size(data, spec, levels=levels)
             feature["exponent"] = pm.Data("group_mean_log_size", split.group_mean,
                                           dims="species") - log_size_ref
-            within = pm.Normal("within_exponent", float(pri["within_exponent"]["mean"]),
-                               float(pri["within_exponent"]["sd"]))
-            within_part = within * pm.Data("within_log_size", split.deviation, dims="species")
+            within_part = within_term(model, split, spec)
         else:
             within_part = pt.zeros_like(centred_size)
         # --- end of the within/between split ---

@@ -80,7 +80,8 @@ class ModelSpec:
         (longest job first: Graham 1969, SIAM J. Appl. Math. 17:416-429). One point for the
         law, one per taxon term that varies, two for a latent true size per species (the
         largest block of parameters), one each for curvature, curvature by taxon, a
-        breakpoint and Student-t residuals. Demo batch of 2026-12-03, job seconds in spec
+        breakpoint, Student-t residuals and a within/between split (two when the within
+        exponent varies by species). Demo batch of 2026-12-03, job seconds in spec
         order: island 12, 57, 70, 86, 113 for ranks 1, 3, 5, 6, 7; tree 8, 37, 33, 49 for
         1, 5, 6, 7; cell 11, 27, 40 for 1, 3, 3 (benchmarks/README.md).
         """
@@ -91,6 +92,7 @@ class ModelSpec:
         rank += {"none": 0, "shared": 1}.get(self.curvature, 2)
         rank += 1 if self.breakpoint != "none" else 0
         rank += 1 if self.residuals == "student_t" else 0
+        rank += {"together": 0, "separate": 1}.get(self.within_species, 2)
         return rank
 
 
@@ -217,6 +219,15 @@ def describe_spec(spec: ModelSpec) -> str:
             f"{spec.hinge_width:g} on the log scale; the break location has a uniform prior "
             f"between the {pri['break_range']['lower_quantile']:.0%} and "
             f"{pri['break_range']['upper_quantile']:.0%} quantiles of observed log size."
+        )
+    if spec.within_species != "together":
+        sentences.append(
+            "Log size is split into the mean of its species (the innermost taxon level) and the "
+            "deviation from that mean, each with its own slope: the exponent is the "
+            "between-species exponent and the within-species exponent is estimated apart "
+            "(van de Pol & Wright 2009)"
+            + ("; each species has its own within-species exponent, partially pooled."
+               if spec.within_species == "separate_by_species" else ".")
         )
     sentences.append(_describe_errors(spec))
     for cov in spec.covariates:

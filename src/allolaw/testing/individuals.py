@@ -25,8 +25,12 @@ __all__ = ["simulate_individuals", "write_individuals_csv"]
 def simulate_individuals(*, n_species: int, per_species: int, between: float = 0.75,
                          within: float = 1.0, intercept: float = 0.0, species_sd: float = 0.1,
                          sigma: float = 0.1, spread: float = 1.5, within_spread: float = 0.3,
-                         n_genera: int = 4, seed: int = 0) -> pd.DataFrame:
+                         n_genera: int = 4, within_sd: float = 0.0,
+                         seed: int = 0) -> pd.DataFrame:
     """Return one row per individual: ``genus``, ``species``, ``log_size``, ``log_trait``.
+
+    With ``within_sd`` > 0 each species has its own within exponent, normal around ``within``
+    with that SD (the truth is in the column ``true_within_exponent``).
 
     Balanced: every species has ``per_species`` individuals; species ``k`` is in genus
     ``k % n_genera``. Sizes are natural logs around 0 (the reference size is 1).
@@ -36,8 +40,10 @@ def simulate_individuals(*, n_species: int, per_species: int, between: float = 0
     offset = rng.normal(0.0, species_sd, n_species)
     sp = np.repeat(np.arange(n_species), per_species)
     dev = rng.normal(0.0, within_spread, sp.size)
+    slopes = within + (rng.normal(0.0, within_sd, n_species) if within_sd > 0 else 0.0)
+    slopes = np.broadcast_to(slopes, (n_species,))
     log_size = mean_size[sp] + dev
-    log_trait = (intercept + between * mean_size[sp] + within * dev + offset[sp]
+    log_trait = (intercept + between * mean_size[sp] + slopes[sp] * dev + offset[sp]
                  + rng.normal(0.0, sigma, sp.size))
     width = len(str(n_species - 1))
     return pd.DataFrame({
@@ -45,6 +51,7 @@ def simulate_individuals(*, n_species: int, per_species: int, between: float = 0
         "species": [f"G{k % n_genera} s{k:0{width}d}" for k in sp],
         "log_size": log_size,
         "log_trait": log_trait,
+        "true_within_exponent": slopes[sp],
     })
 
 
