@@ -83,3 +83,23 @@ def test_ledger_accounts_for_every_line_of_100000_individuals(tmp_path):
     assert (ledger["fate"] == "kept").all()
     assert len(read_clean(results, "d")) == 100_000
     assert ledger["species"].is_unique
+
+
+@pytest.mark.mcmc
+# The JAX-compiled parts of the fit drop a shape assertion of the taxon terms and say so; the
+# shapes are fixed by the data here, so the warning is expected.
+@pytest.mark.filterwarnings("ignore:Skipping Assert:UserWarning")
+def test_individuals_fit_with_species_as_innermost_level_and_a_within_exponent(tmp_path):
+    from allolaw.model.fitting import fit_dataset_model
+
+    path = write_individuals_csv(tmp_path / "ind.csv", n_rows=60, per_species=6, seed=2)
+    columns = {"species": "species", "size": "mass_g", "trait": "rate_w", "levels": ["genus"]}
+    config = _config(tmp_path, path, columns)
+    config["models_dir"] = str(Path(__file__).resolve().parents[1] / "models")
+    config["sampler"].update(chains=2, draws=100, warmup=100, prior_draws=20, seed=4)
+    config["datasets"]["d"]["models"] = ["individuals_within"]
+    prepare_dataset(config, "d")
+    idata = fit_dataset_model(config, "d", "individuals_within")
+    assert idata.posterior["taxon_intercept__species_level"].shape[-1] == 10
+    assert idata.posterior["within_exponent"].shape[:2] == (2, 100)
+    assert idata.observed_data.sizes["species"] == 60

@@ -261,7 +261,9 @@ def describe_spec(spec: ModelSpec) -> str:
     )
     sentences.append(
         f"Priors: exponent normal({pri['exponent']['mean']:g}, {pri['exponent']['sd']:g}); "
-        f"intercept normal with SD {pri['intercept']['sd']:g}, {intercept_text}; {sigma_text}."
+        f"intercept normal with SD {pri['intercept']['sd']:g}, {intercept_text}; {sigma_text}"
+        + (f"; within-species exponent normal({pri['within_exponent']['mean']:g}, "
+           f"{pri['within_exponent']['sd']:g})." if spec.within_species != "together" else ".")
     )
     return " ".join(sentences)
 
