@@ -137,10 +137,56 @@ def test_non_positive_energy_equivalent_is_refused():
 def test_check_unit_accepts_every_quantity_kind():
     for unit, quantity in [("g", "mass"), ("W", "power"), ("cm", "length"),
                            ("um**3", "volume"), ("fmol/h", "rate"), ("dimensionless",
-                                                                     "dimensionless")]:
+                                                                     "dimensionless"),
+                           ("m/s", "speed"), ("Hz", "frequency"), ("1/min", "frequency"),
+                           ("h", "time"), ("m**2", "area"), ("ha", "area"), ("kJ", "energy"),
+                           ("mol/L", "concentration"), ("count", "count"), ("K", "temperature")]:
         check_unit(unit, quantity)
-    with pytest.raises(UserError, match="unknown quantity kind"):
-        check_unit("g", "weight")
+
+
+def test_a_named_kind_still_refuses_a_canonical_unit_of_another_dimension():
+    with pytest.raises(UserError, match="declared as speed"):
+        check_unit("Hz", "speed")
+
+
+def test_a_quantity_outside_the_named_kinds_is_a_description_only():
+    # The canonical unit then fixes the dimensionality; the source unit must match it.
+    assert check_unit("Hz", "stride frequency") == ureg.Unit("hertz")
+    assert conversion_factor("1/min", "Hz", "stride frequency") == pytest.approx(1 / 60)
+    with pytest.raises(UserError, match=r"'km/h' measures .*canonical unit 'Hz'"):
+        conversion("km/h", "Hz", "stride frequency")
+
+
+def test_kilometre_per_hour_is_one_over_3_6_metre_per_second():
+    # SI Brochure, 9th ed. (BIPM 2019), Table 8: 1 km/h = (1000/3600) m/s = 1/3.6 m/s.
+    assert conversion_factor("km/h", "m/s", "speed") == pytest.approx(1 / 3.6, rel=1e-12)
+
+
+def test_one_per_minute_is_one_sixtieth_hertz():
+    # SI Brochure, 9th ed. (BIPM 2019): Hz = s^-1 (Table 4) and 1 min = 60 s (Table 8).
+    assert conversion_factor("1/min", "Hz", "frequency") == pytest.approx(1 / 60, rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("source", "target", "quantity", "factor"),
+    [
+        # SI Brochure, 9th ed. (BIPM 2019), Table 8: 1 ha = 10^4 m^2; 1 L = 10^-3 m^3.
+        ("ha", "m**2", "area", 1e4),
+        ("mmol/L", "mol/m**3", "concentration", 1.0),
+        # Hand arithmetic: 1 kJ = 1000 J; 1 h = 3600 s; 1 kHz = 1000 Hz.
+        ("kJ", "J", "energy", 1e3),
+        ("h", "s", "time", 3600.0),
+        ("kHz", "Hz", "frequency", 1e3),
+    ],
+)
+def test_new_quantity_kinds_convert_by_their_si_factors(source, target, quantity, factor):
+    assert conversion_factor(source, target, quantity) == pytest.approx(factor, rel=1e-12)
+
+
+@pytest.mark.parametrize("unit", ["MHz", "mhz", "HZ", "kmh", "Yr", "a"])
+def test_case_clashes_and_rarely_meant_symbols_of_new_kinds_still_stop(unit):
+    with pytest.raises(UserError, match=r"accepted short symbols|unknown unit"):
+        check_unit(unit)
 
 
 def test_log_of_converted_values_shifts_by_log_factor():

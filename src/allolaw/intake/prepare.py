@@ -22,6 +22,7 @@ from allolaw import __version__
 from allolaw.config import dataset_config
 from allolaw.errors import UserError
 from allolaw.intake.cells import MISSING_STRINGS, neutralise_formula
+from allolaw.intake.individuals import label_individuals, species_level_name
 from allolaw.intake.ledger import (
     build_ledger,
     check_accounting,
@@ -101,6 +102,12 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
                                            covariate_units=covariate_units, energy=energy,
                                            warnings=warnings)
     usable = [i for i, r in enumerate(rows.reason) if not r]
+    rows_are = ds.get("rows_are", "species_values")
+    if rows_are == "individuals":  # the species becomes the innermost level (intake/individuals)
+        inner = species_level_name(ds, levels, _RESERVED)
+        label_individuals(rows, usable, inner)
+        levels = [*levels, inner]
+        columns = [*columns, str(ds["sources"][0]["columns"]["species"])]
     frame = usable_frame(rows, usable, levels, covariates)
     check_taxonomy(frame, levels)
     frame, outliers = _outliers(ds, dataset, rows, frame)
@@ -119,6 +126,7 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
         "reference_size": reference_size,
         "log_reference_size": log_reference,
         "reference_size_rule": reference_rule,
+        "rows_are": rows_are,
         "levels": levels,
         "level_columns": columns,
         "covariates": covariates,
@@ -140,8 +148,9 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
     inputs = [{"file": t.file, "sha256": t.sha256} for t in tables]
     _write_outputs(results, dataset, clean, ledger, prepared, inputs,
                    config_section_sha256(ds, energy))
+    rows_are_word = "individuals" if rows_are == "individuals" else "species"
     summary = (
-        f"{dataset}: {len(rows.line)} input rows → {len(clean)} species "
+        f"{dataset}: {len(rows.line)} input rows → {len(clean)} {rows_are_word} "
         f"({counts['kept']} kept, {counts['merged']} merged, {counts['dropped']} dropped); "
         f"wrote {clean_path(results, dataset).parent}/"
     )

@@ -1,5 +1,10 @@
 """Units: one pint registry, the quantity kinds of the config, and conversions to canonical units.
 
+Any quantity pint can measure is accepted: the canonical unit of a column fixes its
+dimensionality, and every source unit must have the same one (``km/h`` for a ``m/s`` column,
+``1/min`` for ``Hz``). The config's ``quantity`` is free text; when it names one of the kinds in
+:data:`QUANTITY_DIMENSIONS` the canonical unit is checked against that kind too.
+
 Every conversion is affine, ``canonical = value * factor + offset``; only temperatures (degC → K)
 have an offset. Oxygen consumption (``mL O2/h``, ``L O2/min`` …) is a volume per time of O2; it
 becomes power through an energy equivalent in J per mL O2. The ``O2`` token is read here (pint
@@ -45,7 +50,9 @@ ureg = pint.UnitRegistry()
 # 21.1 J/mL for pure carbohydrate oxidation are quoted — from memory).
 DEFAULT_ENERGY_PER_ML_O2_JOULE = 20.1
 
-# The quantity kinds a dataset axis may hold, as pint dimensionalities.
+# The named quantity kinds, as pint dimensionalities, with a reference unit of each. A
+# `quantity` outside this list is a plain description: the canonical unit alone then fixes
+# the dimensionality.
 QUANTITY_DIMENSIONS: dict[str, str] = {
     "mass": "[mass]",
     "power": "[mass] * [length] ** 2 / [time] ** 3",
@@ -53,6 +60,30 @@ QUANTITY_DIMENSIONS: dict[str, str] = {
     "volume": "[length] ** 3",
     "rate": "[substance] / [time]",
     "dimensionless": "[]",
+    "count": "[]",
+    "speed": "[length] / [time]",
+    "frequency": "1 / [time]",
+    "time": "[time]",
+    "area": "[length] ** 2",
+    "energy": "[mass] * [length] ** 2 / [time] ** 2",
+    "concentration": "[substance] / [length] ** 3",
+    "temperature": "[temperature]",
+}
+_REFERENCE_UNITS: dict[str, str] = {
+    "mass": "g",
+    "power": "W",
+    "length": "m",
+    "volume": "m**3",
+    "rate": "mol/s",
+    "dimensionless": "dimensionless",
+    "count": "dimensionless",
+    "speed": "m/s",
+    "frequency": "Hz",
+    "time": "s",
+    "area": "m**2",
+    "energy": "J",
+    "concentration": "mol/L",
+    "temperature": "K",
 }
 
 # The short unit symbols accepted, by the kind of quantity they measure (config/README.md
@@ -61,11 +92,16 @@ ABBREVIATIONS: dict[str, tuple[str, ...]] = {
     "mass": ("g", "kg", "mg", "ug", "ng", "pg", "fg", "t", "lb", "oz"),
     "length": ("m", "km", "cm", "mm", "um", "nm"),
     "volume": ("L", "l", "dL", "cL", "mL", "ml", "uL", "ul", "nL", "nl", "pL", "fL"),
-    "time": ("s", "ms", "min", "h", "hr", "d"),
+    "area": ("ha",),
+    "time": ("s", "ms", "min", "h", "hr", "d", "yr"),
+    "frequency": ("Hz", "kHz"),
+    "speed": ("mph",),
     "power": ("W", "kW", "mW", "uW", "nW"),
     "energy": ("J", "kJ", "mJ", "cal", "kcal"),
+    "pressure": ("Pa", "kPa"),
     "amount": ("mol", "mmol", "umol", "nmol", "pmol", "fmol", "amol"),
     "temperature": ("K", "degC", "degF"),
+    "count": ("count",),
 }
 _ACCEPTED = frozenset(a for group in ABBREVIATIONS.values() for a in group)
 _TOKEN = re.compile(r"[A-Za-z_]+")
@@ -118,7 +154,8 @@ def check_unit(unit: str, quantity: str | None = None, *, where: str = "") -> pi
         Unit string as pint reads it (``g``, ``kg``, ``mW``, ``um**3``, ``degC`` …); an oxygen
         unit (``mL O2/h``) is accepted for ``power``.
     quantity
-        One of :data:`QUANTITY_DIMENSIONS`, or ``None`` to skip the check.
+        A kind of :data:`QUANTITY_DIMENSIONS` to check against; any other text, or ``None``,
+        skips the check (the canonical unit then fixes the dimensionality).
     where
         Location for the error message (file, line, column or config key).
 
@@ -133,12 +170,8 @@ def check_unit(unit: str, quantity: str | None = None, *, where: str = "") -> pi
         If the unit is unknown or measures another kind of quantity.
     """
     oxygen, parsed = _parse(unit, where=where)
-    if quantity is None:
+    if quantity is None or quantity not in QUANTITY_DIMENSIONS:
         return parsed
-    if quantity not in QUANTITY_DIMENSIONS:
-        known = ", ".join(QUANTITY_DIMENSIONS)
-        msg = f"{_prefix(where)}unknown quantity kind {quantity!r} (known: {known})"
-        raise UserError(msg)
     if oxygen:
         if quantity != "power":
             msg = (
@@ -172,7 +205,9 @@ def conversion(
         Unit strings. Either may be an oxygen unit (``mL O2/h``); oxygen consumption converts
         to power as ``W = (mL O2 / s) * energy_per_ml_o2_joule``.
     quantity
-        Kind of quantity both units must measure (checked), or ``None``.
+        Kind of quantity ``to_unit`` must measure (checked when it is a kind of
+        :data:`QUANTITY_DIMENSIONS`), or ``None``. With a quantity given, ``from_unit`` must
+        have the dimensionality of ``to_unit`` (oxygen consumption stands for power).
     energy_per_ml_o2_joule
         Energy equivalent of oxygen, J per mL O2.
     where
@@ -186,8 +221,9 @@ def conversion(
     from_ox, from_parsed = _parse(from_unit, where=where)
     to_ox, to_parsed = _parse(to_unit, where=where)
     if quantity is not None:
-        check_unit(from_unit, quantity, where=where)
         check_unit(to_unit, quantity, where=where)
+        _check_same_dimension(from_unit, from_ox, from_parsed, to_unit, to_ox, to_parsed,
+                              quantity, where)
     energy: float | None = None
     if from_ox == to_ox:
         source, target = from_parsed, to_parsed
@@ -312,6 +348,30 @@ def _check_symbols(unit: str, text: str, where: str) -> None:
         raise UserError(msg)
 
 
+def _check_same_dimension(from_unit: str, from_ox: bool, from_parsed: pint.Unit, to_unit: str,
+                          to_ox: bool, to_parsed: pint.Unit, quantity: str, where: str) -> None:
+    # The source unit must measure what the canonical unit measures; oxygen stands for power.
+    power = ureg.Unit("W")
+    from_power = from_ox or from_parsed.is_compatible_with(power)
+    to_power = to_ox or to_parsed.is_compatible_with(power)
+    if from_ox != to_ox and from_power and to_power:
+        return
+    if from_ox and not to_power:
+        msg = (
+            f"{_prefix(where)}unit {from_unit!r} is oxygen consumption, which can only stand for "
+            f"power, but this column is declared as {quantity} (canonical unit {to_unit!r})"
+        )
+        raise UserError(msg)
+    if from_ox == to_ox and from_parsed.is_compatible_with(to_parsed):
+        return
+    msg = (
+        f"{_prefix(where)}unit {from_unit!r} measures {_describe(from_parsed)}, but this column "
+        f"is declared as {quantity}: its canonical unit {to_unit!r} measures "
+        f"{_describe(to_parsed)}"
+    )
+    raise UserError(msg)
+
+
 def _magnitude(
     value: float, unit: str, target: pint.Unit, from_unit: str, to_unit: str, where: str
 ) -> float:
@@ -326,15 +386,7 @@ def _magnitude(
 
 
 def _dimension_unit(quantity: str) -> pint.Unit:
-    reference = {
-        "mass": "g",
-        "power": "W",
-        "length": "m",
-        "volume": "m**3",
-        "rate": "mol/s",
-        "dimensionless": "dimensionless",
-    }
-    return ureg.Unit(reference[quantity])
+    return ureg.Unit(_REFERENCE_UNITS[quantity])
 
 
 def _describe(unit: pint.Unit) -> str:

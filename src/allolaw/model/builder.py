@@ -27,6 +27,7 @@ import pytensor.tensor as pt
 from allolaw.model.inputs import read_inputs
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
+from allolaw.model.within import split_log_size, within_term
 
 __all__ = ["TRAIT", "build_model"]
 
@@ -128,7 +129,16 @@ def build_model(
         feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
                    "curvature": centred_size**2}
 
-        offset = sum((shared[t] * feature[t] for t in shared), pt.zeros_like(centred_size))
+        # --- within/between split (model/within.py): the exponent acts on group means ---
+        if spec.within_species in ("separate", "separate_by_species"):
+            split = split_log_size(data, spec, levels=levels)
+            feature["exponent"] = pm.Data("group_mean_log_size", split.group_mean,
+                                          dims="species") - log_size_ref
+            within_part = within_term(model, split, spec)
+        else:
+            within_part = pt.zeros_like(centred_size)
+        # --- end of the within/between split ---
+        offset = sum((shared[t] * feature[t] for t in shared), within_part)
         for cov in spec.covariates:
             offset = offset + covariate_term(cov, inputs, pri["covariate"])
         if spec.breakpoint == "one" and "exponent" in shared:

@@ -47,6 +47,7 @@ class ModelSpec:
     covariates: list[dict[str, Any]]
     priors: dict[str, dict[str, Any]]
     source: str = field(default="", compare=False)
+    within_species: str = "together"
 
     def to_dict(self) -> dict[str, Any]:
         """Return the spec as plain data (the keys of the YAML file plus ``name``)."""
@@ -62,6 +63,7 @@ class ModelSpec:
             "residuals": self.residuals,
             "covariates": copy.deepcopy(self.covariates),
             "priors": copy.deepcopy(self.priors),
+            "within_species": self.within_species,
         }
 
     def to_json(self) -> str:
@@ -82,7 +84,8 @@ class ModelSpec:
         (longest job first: Graham 1969, SIAM J. Appl. Math. 17:416-429). One point for the
         law, one per taxon term that varies, two for a latent true size per species (the
         largest block of parameters), one each for curvature, curvature by taxon, a
-        breakpoint and Student-t residuals. Demo batch of 2026-12-03, job seconds in spec
+        breakpoint, Student-t residuals and a within/between split (two when the within
+        exponent varies by species). Demo batch of 2026-12-03, job seconds in spec
         order: island 12, 57, 70, 86, 113 for ranks 1, 3, 5, 6, 7; tree 8, 37, 33, 49 for
         1, 5, 6, 7; cell 11, 27, 40 for 1, 3, 3 (benchmarks/README.md).
         """
@@ -93,6 +96,7 @@ class ModelSpec:
         rank += {"none": 0, "shared": 1}.get(self.curvature, 2)
         rank += 1 if self.breakpoint != "none" else 0
         rank += 1 if self.residuals == "student_t" else 0
+        rank += {"together": 0, "separate": 1}.get(self.within_species, 2)
         return rank
 
 
@@ -198,6 +202,7 @@ def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:
         covariates=spec["covariates"],
         priors=spec["priors"],
         source=source,
+        within_species=spec["within_species"],
     )
 
 
@@ -255,6 +260,15 @@ def describe_spec(spec: ModelSpec) -> str:
             f"between the {pri['break_range']['lower_quantile']:.0%} and "
             f"{pri['break_range']['upper_quantile']:.0%} quantiles of observed log size."
         )
+    if spec.within_species != "together":
+        sentences.append(
+            "Log size is split into the mean of its species (the innermost taxon level) and the "
+            "deviation from that mean, each with its own slope: the exponent is the "
+            "between-species exponent and the within-species exponent is estimated apart "
+            "(van de Pol & Wright 2009)"
+            + ("; each species has its own within-species exponent, partially pooled."
+               if spec.within_species == "separate_by_species" else ".")
+        )
     sentences.append(_describe_errors(spec))
     for cov in spec.covariates:
         if cov["transform"] == "boltzmann":
@@ -287,7 +301,9 @@ def describe_spec(spec: ModelSpec) -> str:
     )
     sentences.append(
         f"Priors: exponent normal({pri['exponent']['mean']:g}, {pri['exponent']['sd']:g}); "
-        f"intercept normal with SD {pri['intercept']['sd']:g}, {intercept_text}; {sigma_text}."
+        f"intercept normal with SD {pri['intercept']['sd']:g}, {intercept_text}; {sigma_text}"
+        + (f"; within-species exponent normal({pri['within_exponent']['mean']:g}, "
+           f"{pri['within_exponent']['sd']:g})." if spec.within_species != "together" else ".")
     )
     return " ".join(sentences)
 
