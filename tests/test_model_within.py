@@ -128,6 +128,7 @@ def test_by_species_model_builds_with_and_without_taxon_terms():
         assert len(model.coords["species_level"]) == 5
 
 
+@pytest.mark.slow  # about 90 s: CI runs it in the round-two studies step
 @pytest.mark.mcmc
 def test_within_exponents_varying_by_species_are_partially_pooled_and_recovered():
     # Invented individuals with known truth: within exponents normal(1.0, 0.3) by species.
