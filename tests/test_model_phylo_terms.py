@@ -174,3 +174,52 @@ def test_exponent_with_full_ancestry_and_known_sigma_equals_phylogenetic_gls():
     mean = float(idata.posterior["exponent"].mean())
     mcse = float(az.mcse(idata, var_names=["exponent"])["exponent"])
     assert abs(mean - gls.params[1]) < 3 * mcse
+
+
+def test_taxon_terms_with_shared_ancestry_are_non_centred_without_the_whitening_potential():
+    tree, data = _dataset(12, seed=11)
+    data["family"] = [f"F{i % 3}" for i in range(12)]
+    spec = parse_spec({"taxa": {"levels": "all"}, "shared_ancestry": "signal"}, name="t")
+    model = build_model(data, spec, levels=["family"], log_reference_size=0.0,
+                        phylogeny=tree)
+    assert model.potentials == []
+    assert "taxon_exponent__family" in model.named_vars
+
+
+@pytest.mark.mcmc
+def test_fit_stage_reads_the_prepared_tree_and_records_its_hash(tmp_path):
+    from allolaw.config import validate_config
+    from allolaw.intake import prepare_dataset
+    from allolaw.model.fitting import fit_dataset_model
+    from allolaw.phylogeny import write_newick
+
+    tree, data = _dataset(15, seed=12)
+    table = tmp_path / "t.csv"
+    lines = ["species,mass,rate"] + [
+        f"{s},{np.exp(x):.6g},{np.exp(y):.6g}"
+        for s, x, y in zip(data["species"], data["log_size"], data["log_trait"], strict=True)]
+    table.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    (tmp_path / "t.nwk").write_text(write_newick(tree), encoding="utf-8")
+    models = tmp_path / "models"
+    models.mkdir()
+    (models / "phylo.yaml").write_text("taxa: {levels: none}\nshared_ancestry: signal\n")
+    source = {"file": str(table), "units": {"size": "g", "trait": "W"},
+              "columns": {"species": "species", "size": "mass", "trait": "rate"}}
+    config = validate_config({
+        "results_dir": str(tmp_path / "results"), "models_dir": str(models),
+        "sampler": {"chains": 1, "draws": 50, "warmup": 50, "backend": "numpyro",
+                    "prior_draws": 10},
+        "datasets": {"d": {"sources": [source], "size": {"quantity": "mass", "unit": "g"},
+                           "trait": {"quantity": "power", "unit": "W"}, "models": ["phylo"],
+                           "tree": str(tmp_path / "t.nwk")}}})
+    prepare_dataset(config, "d")
+    idata = fit_dataset_model(config, "d", "phylo")
+    assert idata.attrs["tree_sha256"] == _file_sha256(tmp_path / "t.nwk")
+    assert idata.log_likelihood["trait"].sizes["species"] == 15
+    assert "ancestry_signal" in idata.posterior
+
+
+def _file_sha256(path):
+    import hashlib
+
+    return hashlib.sha256(path.read_bytes()).hexdigest()
