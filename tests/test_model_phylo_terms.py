@@ -186,6 +186,16 @@ def test_taxon_terms_with_shared_ancestry_are_non_centred_without_the_whitening_
     assert "taxon_exponent__family" in model.named_vars
 
 
+def test_shared_ancestry_with_errors_in_size_builds_a_finite_density():
+    tree, data = _dataset(10, seed=13)
+    data["sd_log_size"] = 0.1
+    data["sd_source_size"] = "given"
+    spec = _spec(shared_ancestry="full", size_error="known")
+    model = build_model(data, spec, levels=[], log_reference_size=0.0, phylogeny=tree)
+    assert "true_log_size" in model.named_vars
+    assert all(np.isfinite(v) for v in model.point_logps().values())
+
+
 @pytest.mark.mcmc
 def test_fit_stage_reads_the_prepared_tree_and_records_its_hash(tmp_path):
     from allolaw.config import validate_config
