@@ -21,6 +21,7 @@ __all__ = [
     "posterior_path",
     "prepared_path",
     "report_path",
+    "tree_path",
 ]
 
 
@@ -34,6 +35,10 @@ def ledger_path(results: str | Path, dataset: str) -> Path:
 
 def prepared_path(results: str | Path, dataset: str) -> Path:
     return Path(results) / dataset / "prepared.json"
+
+
+def tree_path(results: str | Path, dataset: str) -> Path:
+    return Path(results) / dataset / "tree.nwk"
 
 
 def manifest_path(results: str | Path, dataset: str) -> Path:

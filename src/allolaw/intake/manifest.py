@@ -21,7 +21,7 @@ import pandas as pd
 from allolaw import __version__
 from allolaw.errors import UserError
 from allolaw.io import write_json
-from allolaw.paths import clean_path, ledger_path, manifest_path, prepared_path
+from allolaw.paths import clean_path, ledger_path, manifest_path, prepared_path, tree_path
 
 __all__ = ["config_section_sha256", "dataset_config_sha256", "read_clean", "read_prepared",
            "verify_manifest", "write_manifest"]
@@ -98,8 +98,8 @@ def verify_manifest(results_dir: str | Path, dataset: str, *,
         msg = f"{path}: unreadable manifest ({err}): {rerun}"
         raise UserError(msg) from None
     for output in _outputs(results_dir, dataset):
-        if output.name not in recorded and output.name == "ledger.csv":
-            continue  # a set written by hand (tests) may lack the ledger; prepare writes it
+        if output.name not in recorded and output.name in ("ledger.csv", "tree.nwk"):
+            continue  # a set written by hand (tests) may lack the ledger; a tree is optional
         if not output.is_file() or _sha256(output) != recorded.get(output.name):
             msg = (
                 f"{output}: differs from the prepared set recorded in {path.name} (a prepare "
@@ -163,7 +163,7 @@ def read_clean(results_dir: str | Path, dataset: str, *,
 
 def _outputs(results_dir: str | Path, dataset: str) -> list[Path]:
     return [clean_path(results_dir, dataset), ledger_path(results_dir, dataset),
-            prepared_path(results_dir, dataset)]
+            prepared_path(results_dir, dataset), tree_path(results_dir, dataset)]
 
 
 def _sha256(path: Path) -> str:

@@ -41,6 +41,7 @@ from allolaw.intake.species import (
     singleton_taxa,
     usable_frame,
 )
+from allolaw.intake.tree import apply_tree, write_pruned_tree
 from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE, check_unit
 from allolaw.io import atomic_path, write_text
 from allolaw.paths import clean_path, ledger_path, manifest_path, prepared_path
@@ -111,6 +112,7 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
     frame = usable_frame(rows, usable, levels, covariates)
     check_taxonomy(frame, levels)
     frame, outliers = _outliers(ds, dataset, rows, frame)
+    frame, tree = apply_tree(ds, dataset, rows, frame)  # species not in the tree: dropped
 
     clean, pooled, singletons = _species_table(frame, levels, covariates, outliers["species"])
     ledger = build_ledger(rows, frame)
@@ -140,12 +142,16 @@ def prepare_dataset(config: dict[str, Any], dataset: str) -> str:
         "pooled_within_sd": pooled,
         "outliers": outliers,
         "singleton_taxa": singletons,
+        "tree": tree,
     }
     warnings += _neutralise(clean, ledger, levels)
     prepared["warnings"] = warnings
     for warning in warnings:
         log.warning("%s: %s", dataset, warning)
     inputs = [{"file": t.file, "sha256": t.sha256} for t in tables]
+    if tree is not None:
+        inputs.append({"file": tree["file"], "sha256": tree["sha256"]})
+    write_pruned_tree(results, dataset, tree, clean["species"].tolist())
     _write_outputs(results, dataset, clean, ledger, prepared, inputs,
                    config_section_sha256(ds, energy))
     rows_are_word = "individuals" if rows_are == "individuals" else "species"

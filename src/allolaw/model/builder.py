@@ -24,10 +24,13 @@ import pandas as pd
 import pymc as pm
 import pytensor.tensor as pt
 
+from allolaw.errors import UserError
 from allolaw.model.inputs import read_inputs
+from allolaw.model.phylo_terms import ancestry_term
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
 from allolaw.model.within import split_log_size, within_term
+from allolaw.phylogeny import Phylogeny
 
 __all__ = ["TRAIT", "build_model"]
 
@@ -43,6 +46,7 @@ def build_model(
     levels: list[str],
     log_reference_size: float,
     prior_only: bool = False,
+    phylogeny: Phylogeny | None = None,
 ) -> pm.Model:
     """Build the PyMC model of ``spec`` for one clean table.
 
@@ -62,6 +66,12 @@ def build_model(
         Build the model for prior draws: the taxon values are written in the plain
         non-centred form, without the data-whitened map (whose potential prior sampling
         would ignore). Same variables, same joint prior.
+    phylogeny
+        The dataset's tree, species in table order (:func:`allolaw.model.phylo_terms.
+        load_phylogeny`); needed when the spec has ``shared_ancestry`` (the residuals then
+        evolve along it, :func:`allolaw.model.phylo_terms.ancestry_term`, and taxon terms
+        are written in the non-centred form, since the whitened map assumes independent
+        residuals).
 
     Returns
     -------
@@ -98,6 +108,10 @@ def build_model(
        models. In Current Trends in Bayesian Methodology with Applications, CRC.
     """
     inputs = read_inputs(data, spec, levels=levels)
+    if spec.shared_ancestry != "none" and phylogeny is None:
+        msg = (f"model {spec.name}: shared_ancestry {spec.shared_ancestry!r} needs the "
+               "dataset's tree (`tree:` in the config)")
+        raise UserError(msg)
     pri = spec.priors
     coords: dict[str, Any] = {"species": inputs.species}
     for level, taxa in inputs.taxa.items():
@@ -153,7 +167,8 @@ def build_model(
         if varying:
             # the taxon values are whitened by the data (see taxon_terms); the prior draws
             # and `parameterisation: non-centred` use the plain non-centred form
-            whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
+            whiten = (not prior_only and spec.taxa["parameterisation"] == "auto"
+                      and spec.shared_ancestry == "none")
             per_species = taxon_terms(
                 varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
                 features=feature if whiten else None,
@@ -165,7 +180,10 @@ def build_model(
             if spec.breakpoint == "one" and "exponent" in varying:
                 mu = mu + hinge(spec, inputs, size.value, log_size_ref, model["exponent"])
 
-        if spec.residuals == "student_t":
+        if spec.shared_ancestry != "none":  # residuals along the tree (model/phylo_terms.py)
+            ancestry_term(TRAIT, mu, total_sd, pri, spec.shared_ancestry, phylogeny,
+                          inputs.log_trait, model)
+        elif spec.residuals == "student_t":
             nu = pm.Gamma("nu", alpha=pri["nu"]["alpha"], beta=pri["nu"]["beta"])
             pm.StudentT(TRAIT, nu=nu, mu=mu, sigma=total_sd, observed=inputs.log_trait,
                         dims="species")

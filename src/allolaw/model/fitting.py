@@ -96,9 +96,12 @@ def fit_dataset_model(
     seed = derive_seed(int(sampler["seed"]), dataset, model_name)
 
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
-    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size)
+    phylogeny = _phylogeny(results, dataset, prepared, data) if (
+        spec.shared_ancestry != "none") else None
+    model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
+                        phylogeny=phylogeny)
     prior_model = build_model(data, spec, levels=levels, log_reference_size=log_reference_size,
-                              prior_only=True)
+                              prior_only=True, phylogeny=phylogeny)
     idata = fit_model(
         model,
         chains=int(sampler["chains"]),
@@ -121,6 +124,7 @@ def fit_dataset_model(
             "data_sha256": _sha256(clean_file),
             "versions": json.dumps(_versions(), sort_keys=True),
             "log_reference_size": float(log_reference_size),
+            "tree_sha256": (prepared.get("tree") or {}).get("sha256", "") if phylogeny else "",
             "refit": json.dumps(target_acceptance is not None),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
@@ -147,6 +151,18 @@ def _levels(config: dict[str, Any], dataset: str, prepared: dict[str, Any]) -> l
             return [str(level) for level in prepared[key]]
     sources = config["datasets"][dataset].get("sources", [])
     return list(sources[0].get("columns", {}).get("levels", [])) if sources else []
+
+
+def _phylogeny(results: Path, dataset: str, prepared: dict[str, Any], data: Any) -> Any:
+    # the pruned tree prepare wrote (results/<d>/tree.nwk), species in clean.csv order
+    from allolaw.model.phylo_terms import load_phylogeny
+    from allolaw.paths import tree_path
+
+    if not prepared.get("tree"):
+        msg = (f"dataset '{dataset}' has no tree: a model with shared_ancestry needs `tree:` "
+               "in the dataset's config; rerun `allolaw prepare`")
+        raise UserError(msg)
+    return load_phylogeny(tree_path(results, dataset), data["species"].tolist())
 
 
 def _log_reference_size(prepared: dict[str, Any], path: Path) -> float:

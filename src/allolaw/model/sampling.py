@@ -172,14 +172,19 @@ def _add_predictive_groups(idata: az.InferenceData, model: pm.Model, *,
     # unconstrained values. Returns the seconds it took.
     import pymc as pm
 
+    from allolaw.model.phylo_terms import add_ancestry_log_likelihood, has_ancestry
+
     start = time.perf_counter()
     with model:
         if "log_likelihood" in idata.groups():
             del idata.log_likelihood
-        pm.compute_log_likelihood(
-            idata, var_names=[OBSERVED], model=model, progressbar=False,
-            compile_kwargs=per_draw_compile(),
-        )
+        if has_ancestry(model):  # one joint density: pointwise LOO values instead
+            add_ancestry_log_likelihood(idata, model, OBSERVED)
+        else:
+            pm.compute_log_likelihood(
+                idata, var_names=[OBSERVED], model=model, progressbar=False,
+                compile_kwargs=per_draw_compile(),
+            )
         log.info("fit: log-likelihood of %r in %.1f s", OBSERVED, time.perf_counter() - start)
         phase = time.perf_counter()
         with warnings.catch_warnings():

@@ -46,6 +46,7 @@ class ModelSpec:
     residuals: str
     covariates: list[dict[str, Any]]
     priors: dict[str, dict[str, Any]]
+    shared_ancestry: str = "none"
     source: str = field(default="", compare=False)
     within_species: str = "together"
 
@@ -64,6 +65,7 @@ class ModelSpec:
             "covariates": copy.deepcopy(self.covariates),
             "priors": copy.deepcopy(self.priors),
             "within_species": self.within_species,
+            "shared_ancestry": self.shared_ancestry,
         }
 
     def to_json(self) -> str:
@@ -97,6 +99,7 @@ class ModelSpec:
         rank += 1 if self.breakpoint != "none" else 0
         rank += 1 if self.residuals == "student_t" else 0
         rank += {"together": 0, "separate": 1}.get(self.within_species, 2)
+        rank += {"none": 0, "full": 1}.get(self.shared_ancestry, 2)
         return rank
 
 
@@ -201,6 +204,7 @@ def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:
         residuals=spec["residuals"],
         covariates=spec["covariates"],
         priors=spec["priors"],
+        shared_ancestry=spec["shared_ancestry"],
         source=source,
         within_species=spec["within_species"],
     )
@@ -287,6 +291,8 @@ def describe_spec(spec: ModelSpec) -> str:
         )
     else:
         sentences.append("Residuals are normal on the log scale.")
+    if spec.shared_ancestry != "none":
+        sentences.append(_describe_ancestry(spec))
     sigma = pri["sigma"]
     sigma_text = (
         f"the residual SD is fixed at {sigma['fixed']:g}"
@@ -306,6 +312,24 @@ def describe_spec(spec: ModelSpec) -> str:
            f"{pri['within_exponent']['sd']:g})." if spec.within_species != "together" else ".")
     )
     return " ".join(sentences)
+
+
+def _describe_ancestry(spec: ModelSpec) -> str:
+    if spec.shared_ancestry == "full":
+        how = "by Brownian motion along the tree of the dataset (Felsenstein 1985)"
+    else:
+        prior = spec.priors["ancestry_signal"]
+        lam = (f"fixed at {prior['fixed']:g}" if "fixed" in prior
+               else f"with a beta({prior['alpha']:g}, {prior['beta']:g}) prior")
+        how = ("by Brownian motion along the tree of the dataset scaled by Pagel's λ "
+               f"({lam}; Pagel 1999): λ = 0 is no likeness from shared ancestry, λ = 1 "
+               "plain Brownian motion")
+    text = (f"Residuals of related species are alike: they evolve {how}. Branch lengths are "
+            "divided by the largest root-to-tip distance, so the residual SD is that of a "
+            "species at the full height of the tree.")
+    if spec.taxa["levels"] != "none" and spec.taxa["vary"]:
+        text += " Taxon values are written in the non-centred form."
+    return text
 
 
 def _describe_errors(spec: ModelSpec) -> str:
@@ -387,11 +411,27 @@ def _check_consistency(spec: dict[str, Any], source: str) -> None:
             "the error ratio and cannot be fixed"
         )
         raise UserError(msg)
+    _check_ancestry(spec, source)
     if spec["curvature"] == "shared_and_taxa" and spec["taxa"]["levels"] == "none":
         msg = (
             f"{source}: key 'curvature': bad value 'shared_and_taxa': per-taxon curvature "
             "needs taxon levels (taxa.levels is 'none')"
         )
+        raise UserError(msg)
+
+
+def _check_ancestry(spec: dict[str, Any], source: str) -> None:
+    # the tree density is Gaussian and has no per-species error variance (see model/phylo_terms)
+    if spec["shared_ancestry"] == "none":
+        return
+    value = spec["shared_ancestry"]
+    if spec["residuals"] != "normal":
+        msg = (f"{source}: key 'shared_ancestry': bad value {value!r}: shared ancestry needs "
+               f"normal residuals (residuals is {spec['residuals']!r})")
+        raise UserError(msg)
+    if spec["trait_error"] != "none":
+        msg = (f"{source}: key 'shared_ancestry': bad value {value!r}: shared ancestry cannot "
+               f"be combined with trait_error {spec['trait_error']!r} (use trait_error: none)")
         raise UserError(msg)
 
 
@@ -411,8 +451,8 @@ def _fill_defaults(node: Any, schema: dict[str, Any], root: dict[str, Any]) -> N
         elif key in node and isinstance(node[key], dict) and isinstance(default, dict):
             # a partly given prior keeps the default's other entries ({"sd": 2} → mean too)
             for dkey, dval in default.items():
-                if dkey == "sd" and "fixed" in node[key]:
-                    continue
+                if "fixed" in node[key] and dkey != "fixed":
+                    continue  # a fixed value takes no prior parameters
                 node[key].setdefault(dkey, copy.deepcopy(dval))
         if key in node:
             _fill_defaults(node[key], resolved, root)

@@ -23,7 +23,6 @@ import hashlib
 import math
 import os
 import re
-import unicodedata
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -36,8 +35,6 @@ from allolaw.phylogeny.tree import Phylogeny, prune_tree
 
 __all__ = ["TreeMatch", "match_tree", "normalise_name", "parse_newick", "read_tree"]
 
-# zero-width and invisible characters removed from names (space, joiners, word joiner, BOM)
-_INVISIBLE = re.compile("[\u200b\u200c\u200d\u2060\ufeff\u00ad]")
 
 
 @dataclass(frozen=True)
@@ -77,12 +74,15 @@ class TreeMatch:
 def normalise_name(name: str) -> str:
     """The form in which species and tip names are compared.
 
-    Unicode NFC; zero-width characters and soft hyphens removed; underscores read as spaces
-    (the Newick convention for unquoted labels); runs of white space become one space, none
-    at the ends. Case is kept, as the data intake keeps it (it only collapses white space).
+    The data intake's rule for species names (:func:`allolaw.intake.cells.normalise_name`:
+    Unicode NFC, format characters such as zero-width spaces and soft hyphens removed, runs of
+    white space one space, none at the ends, case kept) after reading underscores as spaces
+    (the Newick convention for unquoted labels).
     """
-    text = _INVISIBLE.sub("", unicodedata.normalize("NFC", name))
-    return " ".join(text.replace("_", " ").split())
+    # imported here: the intake imports this package to read a dataset's tree
+    from allolaw.intake.cells import normalise_name as intake_name
+
+    return intake_name(name.replace("_", " "))
 
 
 def read_tree(
