@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import json
 import os
 import tempfile
@@ -10,7 +11,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-__all__ = ["atomic_path", "write_json", "write_text"]
+__all__ = ["atomic_path", "file_sha256", "write_json", "write_text"]
 
 
 @contextlib.contextmanager
@@ -52,3 +53,12 @@ def _jsonable(obj: Any) -> Any:
         return str(obj)
     msg = f"cannot write {type(obj).__name__} as JSON"
     raise TypeError(msg)
+
+
+def file_sha256(path: str | Path) -> str:
+    """SHA-256 of a file's bytes, read in blocks of 1 MiB (hex digest)."""
+    digest = hashlib.sha256()
+    with Path(path).open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()

@@ -20,7 +20,7 @@ import pandas as pd
 
 from allolaw import __version__
 from allolaw.errors import UserError
-from allolaw.io import write_json
+from allolaw.io import file_sha256, write_json
 from allolaw.paths import clean_path, ledger_path, manifest_path, prepared_path, tree_path
 
 __all__ = ["config_section_sha256", "dataset_config_sha256", "read_clean", "read_prepared",
@@ -60,7 +60,7 @@ def write_manifest(results_dir: str | Path, dataset: str, *, inputs: list[dict[s
     config_sha256
         :func:`config_section_sha256` of the dataset, or ``None`` when not known.
     """
-    outputs = {path.name: _sha256(path) for path in _outputs(results_dir, dataset)
+    outputs = {path.name: file_sha256(path) for path in _outputs(results_dir, dataset)
                if path.is_file()}
     manifest = {
         "dataset": dataset,
@@ -100,7 +100,7 @@ def verify_manifest(results_dir: str | Path, dataset: str, *,
     for output in _outputs(results_dir, dataset):
         if output.name not in recorded and output.name in ("ledger.csv", "tree.nwk"):
             continue  # a set written by hand (tests) may lack the ledger; a tree is optional
-        if not output.is_file() or _sha256(output) != recorded.get(output.name):
+        if not output.is_file() or file_sha256(output) != recorded.get(output.name):
             msg = (
                 f"{output}: differs from the prepared set recorded in {path.name} (a prepare "
                 f"run stopped half-way, or the file was edited): {rerun}"
@@ -108,7 +108,7 @@ def verify_manifest(results_dir: str | Path, dataset: str, *,
             raise UserError(msg)
     for item in inputs:
         source = Path(item["file"])
-        if not source.is_file() or _sha256(source) != item["sha256"]:
+        if not source.is_file() or file_sha256(source) != item["sha256"]:
             state = "is missing" if not source.is_file() else "has changed"
             msg = (f"{source}: the input file {state} since dataset '{dataset}' was prepared: "
                    f"{rerun}")
@@ -166,9 +166,3 @@ def _outputs(results_dir: str | Path, dataset: str) -> list[Path]:
             prepared_path(results_dir, dataset), tree_path(results_dir, dataset)]
 
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()

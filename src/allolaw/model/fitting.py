@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 
 from allolaw import __version__
 from allolaw.errors import UserError
-from allolaw.io import atomic_path
+from allolaw.io import atomic_path, file_sha256
 from allolaw.paths import clean_path, posterior_path, prepared_path
 
 if TYPE_CHECKING:
@@ -121,7 +121,7 @@ def fit_dataset_model(
             "model": model_name,
             "spec": json.dumps(spec.to_dict(), sort_keys=True, default=str),
             "sampler": json.dumps(sampler, sort_keys=True),
-            "data_sha256": _sha256(clean_file),
+            "data_sha256": file_sha256(clean_file),
             "versions": json.dumps(_versions(), sort_keys=True),
             "log_reference_size": float(log_reference_size),
             "tree_sha256": (prepared.get("tree") or {}).get("sha256", "") if phylogeny else "",
@@ -175,12 +175,6 @@ def _log_reference_size(prepared: dict[str, Any], path: Path) -> float:
     return float(value)
 
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _versions() -> dict[str, str]:
