@@ -121,7 +121,8 @@ def build_model(
         shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
                   for t in terms if t not in varying}
         sigma = residual_sd(spec)
-        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma)
+        whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
+        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten)
         if spec.size_error == "ratio":
             sigma = size.sigma
         centred_size = size.value - log_size_ref
@@ -143,7 +144,6 @@ def build_model(
         if varying:
             # the taxon values are whitened by the data (see taxon_terms); the prior draws
             # and `parameterisation: non-centred` use the plain non-centred form
-            whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
             per_species = taxon_terms(
                 varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
                 features=feature if whiten else None,
