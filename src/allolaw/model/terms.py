@@ -63,12 +63,9 @@ def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_h
     if spec.size_error == "ratio":
         pri = spec.priors
         error_sd = pm.HalfNormal("size_error_sd", pri["size_error_sd"]["sd"])
-        ratio_prior = pri["error_ratio"]
-        if ratio_prior["log_sd"] == 0:
-            ratio = pm.Deterministic("error_ratio", pt.as_tensor_variable(ratio_prior["value"]))
-        else:
-            ratio = pm.LogNormal("error_ratio", mu=np.log(ratio_prior["value"]),
-                                 sigma=ratio_prior["log_sd"])
+        # the spec check refuses an uncertain ratio (not identified by the data)
+        ratio = pm.Deterministic("error_ratio",
+                                 pt.as_tensor_variable(float(pri["error_ratio"]["value"])))
         sigma = pm.Deterministic("sigma", pt.sqrt(ratio) * error_sd)
         pm.Normal(SIZE_MEASUREMENT, true, error_sd, observed=x, dims="species")
         return _Size(value=true, sigma=sigma)
