@@ -226,15 +226,16 @@ def test_study_records_every_fit_with_truth_and_consistent_scores(tmp_path):
 @pytest.mark.mcmc
 @pytest.mark.slow  # two fits of 4 chains x (500 + 500): 7 min on the busy machine
 @pytest.mark.xfail(strict=True, reason=(
-    "target for a model whose latent sizes respect taxa: today's taxa_errors corrects "
-    "within-genus slopes with the total reliability, giving posterior means 0.67-0.72 on "
-    "wide_20x12 and 0.56-0.62 on wide_8x15 (benchmarks/misspecification_before.json)"))
-def test_fixed_designs_recover_three_quarters_with_the_improved_model():
+    "wide_8x15 seed 41: interval holds 0.75 but 2/3 ranks first (mean 0.665); the "
+    "dataset's within-genus corrected moment slope is 0.650; wide_20x12 passes"))
+def test_fixed_designs_recover_three_quarters_with_the_taxon_structured_size_population():
+    # simulation with known truth (every genus exponent 0.75); seeds unused by the benchmark
+    # tables (1-5), so the designs are fresh
     from allolaw.model.spec import load_spec
     from allolaw.testing.misspecified_study import fit_scenario
 
     spec = load_spec(REPO / "models", "taxa_errors")
     for name in ("wide_20x12", "wide_8x15"):
-        record = fit_scenario(name, 1, spec, draws=500, warmup=500, chains=4)
+        record = fit_scenario(name, 41, spec, draws=500, warmup=500, chains=4)
         assert record["lo"] <= 0.75 <= record["hi"], name
         assert record["top"] == "3/4", name

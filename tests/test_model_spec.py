@@ -84,6 +84,27 @@ def test_ratio_errors_need_both_axes(tmp_path):
         load_spec(tmp_path, "bad")
 
 
+def test_ratio_mode_with_an_uncertain_ratio_is_refused_naming_file_and_key(tmp_path):
+    _write(tmp_path, "bad", {"size_error": "ratio", "trait_error": "ratio",
+                             "priors": {"error_ratio": {"value": 2.0, "log_sd": 0.5}}})
+    with pytest.raises(UserError, match=r"bad\.yaml.*'priors\.error_ratio\.log_sd'.*0\.5"):
+        load_spec(tmp_path, "bad")
+    _write(tmp_path, "good", {"size_error": "ratio", "trait_error": "ratio"})
+    spec = load_spec(tmp_path, "good")
+    assert spec.priors["error_ratio"] == {"value": 1.0, "log_sd": 0}
+    assert "no scatter about the law beyond measurement error" in describe_spec(spec)
+
+
+def test_methods_text_says_how_the_true_sizes_are_modelled_without_overstating():
+    nested = describe_spec(load_spec(MODELS, "taxa_errors"))
+    assert "each taxon's mean size is normal around its parent's" in nested
+    assert "taken as exact" in nested
+    assert "not diluted" not in nested
+    pooled = describe_spec(parse_spec({"size_error": "replicates", "taxa": {"levels": "none"}},
+                                      name="p"))
+    assert "one normal population" in pooled
+
+
 def test_missing_spec_lists_known_specs(tmp_path):
     _write(tmp_path, "pooled", {})
     with pytest.raises(UserError, match="known specs: pooled"):

@@ -87,6 +87,61 @@ def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
         assert float(logp(point)) == pytest.approx(expected, abs=1e-7), trial
 
 
+def test_whitened_size_population_gives_the_exact_marginal_density_of_the_true_sizes():
+    # With errors in size and taxon levels, the true log sizes follow a nested population
+    # (model.terms.size_population): the taxon size means are whitened given the true sizes
+    # and the potential `size_tree_density` holds their prior density, the log-Jacobian and
+    # the density of the true sizes given their taxon means. For ANY standard normals w it
+    # must equal the marginal density of the true sizes with every taxon size mean integrated
+    # out. Outside check: the dense covariance of the nested normal model,
+    # x ~ N(m 1, s0² 11ᵀ + Σ_l s_l² Z_l Z_lᵀ + s_w² I) (e.g. Gelman et al. 2013, Bayesian Data
+    # Analysis 3rd ed., ch. 15), evaluated with scipy.stats.multivariate_normal.
+    from scipy import stats
+
+    sim = _nested_data()
+    spec = parse_spec({"taxa": {"levels": "all", "vary": ["intercept", "exponent"]},
+                       "size_error": "known",
+                       "priors": {"size_population": {"mean": 0.3, "sd": 2.0,
+                                                      "sd_scale": 1.0}}}, name="s")
+    data = sim.data.assign(sd_source_size="given")
+    model = build_model(data, spec, levels=sim.levels, log_reference_size=0.0)
+    logp = model.compile_logp(vars=[model["size_tree_density"]], sum=True)
+    rng = np.random.default_rng(11)
+    n = len(data)
+    for trial in range(3):
+        point = model.initial_point()
+        true = rng.normal(0.0, 2.0, n)
+        point["size_shift"] = true - data["log_size"].to_numpy()
+        point["size_mean_w"] = rng.normal(0.0, 3.0, point["size_mean_w"].shape)
+        cov = np.full((n, n), 2.0**2)
+        for level in sim.levels:
+            sd = rng.uniform(0.05, 1.5) if trial else 1e-3  # near zero too
+            point[f"size_sd__{level}_log__"] = np.log(sd)
+            onehot = pd.get_dummies(data[level]).to_numpy(dtype=float)
+            cov += sd**2 * onehot @ onehot.T
+        within = rng.uniform(0.1, 1.0)
+        point["size_within_sd_log__"] = np.log(within)
+        cov += within**2 * np.eye(n)
+        expected = stats.multivariate_normal(np.full(n, 0.3), cov).logpdf(true)
+        assert float(logp(point)) == pytest.approx(expected, abs=1e-7), trial
+
+
+def test_size_population_has_one_mean_per_taxon_and_none_without_levels():
+    sim = _nested_data()
+    nested = parse_spec({"taxa": {"levels": "all", "vary": ["exponent"]},
+                         "size_error": "replicates"}, name="n")
+    names = set(build_model(sim.data, nested, levels=sim.levels,
+                            log_reference_size=0.0).named_vars)
+    assert {"size_mean", "size_within_sd", "true_log_size"} <= names
+    assert {f"taxon_size_mean__{lv}" for lv in sim.levels} <= names
+    assert "size_sd" not in names
+    pooled = parse_spec({"size_error": "replicates", "taxa": {"levels": "none"}}, name="p")
+    names = set(build_model(sim.data, pooled, levels=sim.levels,
+                            log_reference_size=0.0).named_vars)
+    assert {"size_mean", "size_sd", "true_log_size"} <= names
+    assert not any(n.startswith(("taxon_size_mean__", "size_within_sd")) for n in names)
+
+
 def test_whitened_map_is_an_exact_change_of_variables_for_robust_models_too():
     # With Student-t residuals the data messages are only an approximation, but the model
     # must stay exact: the potential plus the N(0, 1) density of w must equal the nested

@@ -201,3 +201,28 @@ def test_student_t_resists_the_three_dinosaurs_that_pull_the_normal_model(mammal
     # the Student-t model moves back towards the 62-mammal value
     assert b_robust.mean() > b_normal.mean() + 0.1
     assert abs(b_robust.mean() - reference) < abs(b_normal.mean() - reference) / 2
+
+
+@pytest.mark.slow  # 600 latent sizes: about a minute on the shared machine
+def test_exponent_with_known_size_error_agrees_with_the_reliability_corrected_slope():
+    # Simulation with known truth (exponent 0.75, reliability 0.7, known error SD). For the
+    # normal structural model with known error variance, the method-of-moments slope
+    # b = b_OLS / λ̂, λ̂ = (s²_x − σ²_u) / s²_x (Fuller 1987, Measurement Error Models, §1.1,
+    # eq. 1.1.6; §1.2) is also its maximum-likelihood slope, so with n = 600 and weak priors
+    # the posterior mean must agree with it to sampling noise of the MCMC (0.02: common
+    # practice, no source).
+    from allolaw.testing.misspecified_study import corrected_slope
+
+    sim = simulate_size_error(seed=51, reliability=0.7, n_species=600, exponent=0.75,
+                              sigma=0.3)
+    errors = parse_spec(
+        {"taxa": {"levels": "none"}, "size_error": "known", "priors": WEAK}, name="errors"
+    )
+    data = sim.data.assign(sd_source_size="given")
+    idata = quick_sample(build_model(data, errors, levels=[], log_reference_size=0.0), seed=5)
+    moments = corrected_slope(data["log_size"].to_numpy(), data["log_trait"].to_numpy(),
+                              data["sd_log_size"].to_numpy() ** 2)
+    slope = float(_posterior(idata, "exponent").mean())
+    assert slope == pytest.approx(moments["slope"], abs=0.02)
+    # and the correction matters here: least squares is off by more than that
+    assert abs(moments["slope"] - moments["ols"]) > 0.1

@@ -86,14 +86,18 @@ def build_model(
 
     Notes
     -----
-    Errors in size are modelled structurally: each species has a latent true log size with a
-    normal population prior (mean and SD estimated), and the measured log size is normal
-    around it with the known SD (Carroll et al. 2006, ch. 9; Richardson & Gilks 1993). With
-    ``ratio`` errors this is the Bayesian form of Deming regression (Deming 1943).
+    Errors in size are modelled structurally: each species has a latent true log size, and
+    the measured log size is normal around it with the given SD, taken as exact (Carroll et
+    al. 2006, ch. 9; Richardson & Gilks 1993). The true log sizes follow a normal population
+    nested like the spec's taxon levels (:func:`~allolaw.model.terms.true_log_size`), one
+    normal population without taxon levels. With ``ratio`` errors (fixed ratio, no scatter
+    beyond measurement error) this is the Bayesian form of Deming regression (Deming 1943).
     Taxon deviations are independent normal terms per level (no correlation between the
     intercept and exponent deviations of a taxon). The sampler sees them whitened by the data
-    (:func:`taxon_terms`), which removes the funnels of hierarchical models (Betancourt &
-    Girolami 2015) without choosing between centred and non-centred forms.
+    (:func:`taxon_terms`): for a law linear in the taxon values with normal residuals and
+    exact sizes the map is exact and the funnel between taxon values and their SDs
+    (Betancourt & Girolami 2015) is gone; otherwise it is an approximation that reduces it,
+    while the model stays exactly the nested one.
 
     References
     ----------
@@ -136,7 +140,8 @@ def build_model(
         shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
                   for t in terms if t not in varying}
         sigma = residual_sd(spec)
-        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma)
+        whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
+        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten)
         if spec.size_error == "ratio":
             sigma = size.sigma
         centred_size = size.value - log_size_ref

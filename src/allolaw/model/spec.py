@@ -333,20 +333,23 @@ def _describe_ancestry(spec: ModelSpec) -> str:
 
 
 def _describe_errors(spec: ModelSpec) -> str:
+    population = _describe_size_population(spec)
     if spec.size_error == "ratio":
         ratio = spec.priors["error_ratio"]
-        fixed = "fixed" if ratio["log_sd"] == 0 else f"log-normal with log-SD {ratio['log_sd']:g}"
         return (
-            "Both axes carry measurement error with a known ratio of trait to size error "
-            f"variances (median {ratio['value']:g}, {fixed}); the true log size of each species "
-            "is a latent parameter with a normal population prior (a Bayesian Deming regression)."
+            "Both axes carry measurement error with a known, fixed ratio of trait to size "
+            f"error variances ({ratio['value']:g}) and one unknown error SD per axis; this "
+            "setting assumes no scatter about the law beyond measurement error (a Bayesian "
+            f"Deming regression). {population}"
         )
     parts = []
     if spec.size_error in ("known", "replicates"):
         origin = "given per species" if spec.size_error == "known" else "from replicates"
         parts.append(
-            f"Size is measured with error (SD {origin}); the true log size of each species is a "
-            "latent parameter with a normal population prior, so the exponent is not diluted."
+            f"Size is measured with error (SD {origin}, taken as exact); the true log size of "
+            f"each species is a latent parameter. {population} The correction of the exponent "
+            "for measurement error in size holds as far as that population model and the "
+            "error SDs are right."
         )
     if spec.trait_error in ("known", "replicates"):
         origin = "given per species" if spec.trait_error == "known" else "from replicates"
@@ -354,6 +357,17 @@ def _describe_errors(spec: ModelSpec) -> str:
             f"The trait's measurement-error variance ({origin}) is added to the residual variance."
         )
     return " ".join(parts) or "Size and trait are taken as measured without error."
+
+
+def _describe_size_population(spec: ModelSpec) -> str:
+    if spec.taxa["levels"] != "none" and (spec.taxa["vary"]
+                                          or spec.curvature == "shared_and_taxa"):
+        return (
+            "The true log sizes are normal around their taxon's mean size, with one SD "
+            "within taxa; each taxon's mean size is normal around its parent's (one SD per "
+            "level), the outermost around a population mean."
+        )
+    return "The true log sizes come from one normal population (mean and SD estimated)."
 
 
 def _format_schema_error(errors: list[jsonschema.ValidationError], source: str) -> str:
@@ -404,6 +418,17 @@ def _check_consistency(spec: dict[str, Any], source: str) -> None:
     sigma = spec["priors"]["sigma"]
     if "fixed" in sigma and "sd" in sigma:
         msg = f"{source}: key 'priors.sigma': bad value {sigma!r}: give either sd or fixed"
+        raise UserError(msg)
+    ratio = spec["priors"]["error_ratio"]
+    if size == "ratio" and ratio["log_sd"] > 0:
+        # with one error SD per axis and no scatter beyond measurement error, the data fix
+        # only the slope given the ratio: an uncertain ratio leaves the posterior of the
+        # ratio at its prior (measured on simulated tables), so the setting is refused
+        msg = (
+            f"{source}: key 'priors.error_ratio.log_sd': bad value {ratio['log_sd']!r}: in "
+            "ratio mode the ratio of trait to size error variances is not identified by the "
+            "data and must be fixed (log_sd: 0, value: the known ratio)"
+        )
         raise UserError(msg)
     if size == "ratio" and "fixed" in sigma:
         msg = (
