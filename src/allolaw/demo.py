@@ -94,6 +94,12 @@ def write_demo_data(out: str | Path, *, seed: int | None = None) -> list[Path]:
 
 
 def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, Any]]:
+    """The island survey's two team files and truth.
+
+    A straight sequence of simulation steps (taxa, truth, species, replicates, the two teams'
+    unit systems and blemishes), kept whole on purpose: split, the order of the random draws
+    that makes the committed demo files would be hidden across helpers.
+    """
     orders = {
         "Calderiformes": ["Ashidae", "Cinderidae", "Pumicidae", "Geyseridae"],
         "Lavaformes": ["Scoriidae", "Obsidiidae", "Tuffidae"],

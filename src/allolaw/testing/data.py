@@ -65,6 +65,9 @@ def simulate_law(
 ) -> Simulated:
     """Simulate one scaling-law dataset from the generative model of ``build_model``.
 
+    Kept as one straight sequence of draws (taxa, sizes, law, errors) on purpose: the order of
+    the random draws fixes every seeded test's data.
+
     Parameters
     ----------
     seed
