@@ -16,7 +16,8 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
-from allolaw.answers.node_tree import Tree, conditional, node_draws, self_check, spec_dict
+from allolaw.answers.node_tree import Tree, conditional, node_draws, spec_dict
+from allolaw.answers.normal_terms import self_check
 
 __all__ = ["DensityEstimate", "exponent_density", "fit_parametric"]
 

@@ -33,6 +33,8 @@ import numpy as np
 from scipy import special, stats
 
 from allolaw.answers.density import fit_parametric
+from allolaw.answers.draws import flat
+from allolaw.answers.normal_terms import law_pieces, self_check
 from allolaw.checks.convergence import pareto_k_threshold
 
 __all__ = ["BreakEvidence", "BreakVerdict", "LooDifference", "break_evidence",
@@ -40,10 +42,6 @@ __all__ = ["BreakEvidence", "BreakVerdict", "LooDifference", "break_evidence",
 
 _RB_METHOD = "Savage–Dickey, Rao–Blackwellised normal full conditional of exponent_above"
 _PARAM_METHOD = "Savage–Dickey, parametric density fitted to draws of the difference"
-# Self-check of the conditional (same bands as allolaw.answers.hypotheses; common practice,
-# no source).
-_SELF_CHECK_MEAN = 0.2
-_SELF_CHECK_VAR = 1.4
 
 
 @dataclass(frozen=True)
@@ -144,8 +142,8 @@ def break_evidence(
     pri = spec_d["priors"]
     m_b, s_b = float(pri["exponent"]["mean"]), float(pri["exponent"]["sd"])
     m_a, s_a = float(pri["exponent_above"]["mean"]), float(pri["exponent_above"]["sd"])
-    below = _flat(post["exponent"])
-    diff = _flat(post["exponent_above"]) - below
+    below = flat(post["exponent"])
+    diff = flat(post["exponent_above"]) - below
     prior_mean, prior_sd = m_a - m_b, math.hypot(s_a, s_b)
 
     log_post, method = _log_density_at_zero(idata, spec_d, below, diff, (m_a, s_a), density)
@@ -284,7 +282,7 @@ def _log_density_at_zero(
         problem = "not normal residuals or missing data" if cond is None else ""
         if cond is not None:
             mean_d, sd_d = cond[0] - below, cond[1]
-            problem = _self_check(diff, mean_d, sd_d)
+            problem = self_check(diff, mean_d, sd_d)
         if not problem:
             log_post = float(special.logsumexp(stats.norm.logpdf(0.0, mean_d, sd_d))
                              - math.log(diff.size))
@@ -299,74 +297,25 @@ def _log_density_at_zero(
 def _above_conditional(idata: az.InferenceData, spec: dict[str, Any], m_a: float, s_a: float
                        ) -> tuple[np.ndarray, np.ndarray] | None:
     """Mean and SD per draw of the normal full conditional of ``exponent_above``."""
-    if spec.get("residuals", "normal") != "normal":
+    law = law_pieces(idata, spec)
+    if law is None:
         return None
-    post = idata.posterior
-    const = getattr(idata, "constant_data", None)
-    obs = getattr(idata, "observed_data", None)
-    if const is None or obs is None or "trait" not in obs or "sigma" not in post:
+    hinge = law.hinge()
+    intercept = law.per_species("intercept")
+    exponent = law.per_species("exponent")
+    curvature = law.per_species("curvature")
+    covariates = law.covariate_part()
+    if hinge is None or "log_size_ref" not in law.const:
         return None
-    if "hinge_width" not in const or "log_size_ref" not in const:
+    if intercept is None or exponent is None or curvature is None or covariates is None:
         return None
-    y = np.asarray(obs["trait"].values, dtype=float).reshape(1, -1)
-    if "true_log_size" in post:
-        x = _flat_matrix(post["true_log_size"], "species")
-    else:
-        x = np.asarray(const["log_size_obs"].values, dtype=float).reshape(1, -1)
-    ref = _scalar(const["log_size_ref"])
-    width = _scalar(const["hinge_width"])
-    brk = _flat(post["break_log_size"])[:, None]
-    hinge = width * (np.logaddexp(0.0, (x - brk) / width)
-                     - np.logaddexp(0.0, (ref - brk) / width))
-    dx = x - ref
-    inner = _innermost(const)
-
-    def per_species(term: str) -> np.ndarray:
-        name = f"taxon_{term}__{inner}" if inner else ""
-        if inner and name in post:
-            idx = np.asarray(const[f"taxon_index__{inner}"].values, dtype=int)
-            return _flat_matrix(post[name], inner)[:, idx]
-        if term in post:
-            return _flat(post[term])[:, None]
-        return np.zeros((1, 1))
-
-    b_pop = _flat(post["exponent"])[:, None]
-    fixed = per_species("intercept") + per_species("exponent") * dx
-    fixed = fixed + per_species("curvature") * dx**2 - b_pop * hinge
-    for name in post.data_vars:
-        if str(name).startswith("coef__"):
-            cov = f"covariate__{str(name).removeprefix('coef__')}"
-            if cov not in const:
-                return None
-            z = np.asarray(const[cov].values, dtype=float).reshape(1, -1)
-            fixed = fixed + _flat(post[name])[:, None] * z
-    var = _flat(post["sigma"])[:, None] ** 2
-    if "sd_log_trait" in const:
-        var = var + np.asarray(const["sd_log_trait"].values, dtype=float).reshape(1, -1) ** 2
-    hinge, var = np.broadcast_arrays(hinge, var, np.empty((1, y.size)))[:2]
+    dx = law.dx
+    b_pop = flat(law.post["exponent"])[:, None]
+    fixed = intercept + exponent * dx + curvature * dx**2 - b_pop * hinge + covariates
+    hinge, var = np.broadcast_arrays(hinge, law.var, np.empty((1, law.n_species)))[:2]
     prec = s_a**-2 + np.sum(hinge**2 / var, axis=1)
-    lin = m_a * s_a**-2 + np.sum(hinge * (y - fixed) / var, axis=1)
+    lin = m_a * s_a**-2 + np.sum(hinge * (law.y[None, :] - fixed) / var, axis=1)
     return lin / prec, prec**-0.5
-
-
-def _innermost(const: Any) -> str:
-    levels = [str(n).removeprefix("taxon_index__") for n in const.data_vars
-              if str(n).startswith("taxon_index__")]
-    if not levels:
-        return ""
-    return max(levels, key=lambda lvl: np.unique(const[f"taxon_index__{lvl}"].values).size)
-
-
-def _self_check(draws: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> str:
-    post_var = float(draws.var())
-    if post_var <= 0:
-        return "the draws do not vary"
-    if abs(float(mean.mean()) - float(draws.mean())) > _SELF_CHECK_MEAN * math.sqrt(post_var):
-        return "conditional means do not average to the posterior mean"
-    ratio = float(np.mean(sd**2) + mean.var()) / post_var
-    if not 1 / _SELF_CHECK_VAR <= ratio <= _SELF_CHECK_VAR:
-        return f"variance ratio {ratio:.2f}"
-    return ""
 
 
 def _loo(idata: az.InferenceData) -> Any:
@@ -374,16 +323,3 @@ def _loo(idata: az.InferenceData) -> Any:
         # high Pareto k is counted and reported by the caller
         warnings.simplefilter("ignore", UserWarning)
         return az.loo(idata, pointwise=True, var_name="trait")
-
-
-def _flat(da: Any) -> np.ndarray:
-    return np.asarray(da.values, dtype=float).reshape(-1)
-
-
-def _flat_matrix(da: Any, dim: str) -> np.ndarray:
-    arr = np.asarray(da.transpose("chain", "draw", dim).values, dtype=float)
-    return arr.reshape(-1, arr.shape[-1])
-
-
-def _scalar(da: Any) -> float:
-    return float(np.asarray(da.values, dtype=float).reshape(-1)[0])

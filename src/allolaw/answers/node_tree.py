@@ -24,14 +24,11 @@ import arviz as az
 import numpy as np
 from scipy import special, stats
 
-from allolaw.answers.draws import flat, flat_matrix, scalar
+from allolaw.answers.draws import flat, flat_matrix
+from allolaw.answers.normal_terms import law_pieces
 
 PRIOR_MC_DRAWS = 20000
 PRIOR_MC_SEED = 20100101
-# Self-check of a conditional: conditional means average to the posterior mean within 0.2
-# posterior SD, and total variance within a factor 1.4 (common practice, no source).
-_SELF_CHECK_MEAN = 0.2
-_SELF_CHECK_VAR = 1.4
 
 
 # --- the taxon tree -----------------------------------------------------------------------
@@ -179,102 +176,44 @@ def _data_terms(
     idata: az.InferenceData, spec: dict[str, Any], tree: Tree, node: _Node
 ) -> tuple[np.ndarray, np.ndarray] | None:
     """Normal likelihood terms of the exponent (linear in it) for the node's species."""
-    if spec.get("residuals", "normal") != "normal":
+    law = law_pieces(idata, spec)
+    if law is None:
         return None
-    post = idata.posterior
-    const = getattr(idata, "constant_data", None)
-    obs = getattr(idata, "observed_data", None)
-    if const is None or obs is None or "trait" not in obs or "sigma" not in post:
+    index = tree.species_index.get(law.inner) if law.inner is not None else None
+    if law.inner is not None and index is None:
         return None
-    y = np.asarray(obs["trait"].values, dtype=float)
-    n_species = y.size
-    if "true_log_size" in post:
-        x = flat_matrix(post["true_log_size"], "species")
-    elif "log_size_obs" in const:
-        x = np.asarray(const["log_size_obs"].values, dtype=float)[None, :]
-    else:
+    a = law.per_species("intercept", index)
+    c = law.per_species("curvature", index)
+    covariates = law.covariate_part()
+    if a is None or c is None or covariates is None:
         return None
-    ref = scalar(const["log_size_ref"]) if "log_size_ref" in const else float(
-        idata.attrs.get("log_reference_size", 0.0))
-    dx = x - ref
-    inner = _innermost_level(post, const)
-
-    def per_species(term: str) -> np.ndarray | None:
-        if inner is not None and f"taxon_{term}__{inner}" in post:
-            vals = flat_matrix(post[f"taxon_{term}__{inner}"], inner)
-            return vals[:, tree.species_index[inner]] if inner in tree.species_index else None
-        if term in post:
-            return flat(post[term])[:, None]
-        return np.zeros((1, 1))
-
-    a = per_species("intercept")
-    c = per_species("curvature")
-    if a is None or c is None:
-        return None
-    offset = a + c * dx**2
+    dx = law.dx
+    offset = a + c * dx**2 + covariates
     regressor = dx
-    if "break_log_size" in post:
-        if node.level or "exponent_above" not in post or "hinge_width" not in const:
+    if "break_log_size" in law.post:
+        hinge = law.hinge()
+        if node.level or "exponent_above" not in law.post or hinge is None:
             return None
-        width = scalar(const["hinge_width"])
-        brk = flat(post["break_log_size"])[:, None]
-        hinge = width * (np.logaddexp(0.0, (x - brk) / width)
-                         - np.logaddexp(0.0, (ref - brk) / width))
-        above = flat(post["exponent_above"])[:, None]
-        offset = offset + above * hinge
+        offset = offset + flat(law.post["exponent_above"])[:, None] * hinge
         regressor = dx - hinge
-    for name in post.data_vars:
-        name = str(name)
-        if name.startswith("coef__"):
-            cov = name.removeprefix("coef__")
-            if f"covariate__{cov}" not in const:
-                return None
-            z = np.asarray(const[f"covariate__{cov}"].values, dtype=float)[None, :]
-            offset = offset + flat(post[name])[:, None] * z
-    sigma = flat(post["sigma"])[:, None]
-    var = sigma**2
-    if "sd_log_trait" in const:
-        var = var + np.asarray(const["sd_log_trait"].values, dtype=float)[None, :] ** 2
-    regressor = np.broadcast_to(regressor, np.broadcast_shapes(regressor.shape,
-                                                               (1, n_species)))
-    resid = y[None, :] - offset
+    n_species = law.n_species
+    shape = (1, n_species)
+    regressor = np.broadcast_to(regressor, np.broadcast_shapes(regressor.shape, shape))
+    resid = law.y[None, :] - offset
     if node.level:
-        if node.level != inner or inner not in tree.species_index:
+        if node.level != law.inner:
             return None
-        mask = tree.species_index[inner] == node.index
+        mask = index == node.index
     else:
         if tree.levels:
             return None  # the population exponent reaches the data through its taxa
         mask = np.ones(n_species, dtype=bool)
     reg = regressor[:, mask]
-    var_m = np.broadcast_to(var, np.broadcast_shapes(var.shape, (1, n_species)))[:, mask]
-    res_m = np.broadcast_to(resid, np.broadcast_shapes(resid.shape, (1, n_species)))[:, mask]
+    var_m = np.broadcast_to(law.var, np.broadcast_shapes(law.var.shape, shape))[:, mask]
+    res_m = np.broadcast_to(resid, np.broadcast_shapes(resid.shape, shape))[:, mask]
     prec = np.sum(reg**2 / var_m, axis=1)
     lin = np.sum(reg * res_m / var_m, axis=1)
     return prec, lin
-
-
-def _innermost_level(post: Any, const: Any) -> str | None:
-    levels = [str(n).removeprefix("taxon_index__") for n in const.data_vars
-              if str(n).startswith("taxon_index__")]
-    if not levels:
-        return None
-    sizes = {lvl: int(np.unique(const[f"taxon_index__{lvl}"].values).size) for lvl in levels}
-    return max(levels, key=lambda lvl: sizes[lvl])
-
-
-def self_check(draws: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> str:
-    post_mean, post_var = float(draws.mean()), float(draws.var())
-    rb_mean = float(mean.mean())
-    rb_var = float(np.mean(sd**2) + mean.var())
-    if post_var <= 0:
-        return "the draws do not vary"
-    if abs(rb_mean - post_mean) > _SELF_CHECK_MEAN * math.sqrt(post_var):
-        return (f"conditional means average {rb_mean:.4g}, draws {post_mean:.4g}")
-    ratio = rb_var / post_var
-    if not 1 / _SELF_CHECK_VAR <= ratio <= _SELF_CHECK_VAR:
-        return f"variance ratio {ratio:.2f}"
-    return ""
 
 
 # --- prior densities ---------------------------------------------------------------------

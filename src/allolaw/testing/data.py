@@ -145,28 +145,16 @@ def simulate_law(
     true_y = mu + sigma * noise
     obs_x, sd_x, within_x = _measure(rng, true_x, size_error_sd, replicates)
     obs_y, sd_y, within_y = _measure(rng, true_y, trait_error_sd, replicates)
-    source = "given" if replicates is None else "replicates"
-    frame: dict[str, Any] = {"species": [f"species_{i + 1:03d}" for i in range(n)]}
-    for depth, name in enumerate(names):
-        # the label of the ancestor at this depth of each species' innermost taxon
-        ancestor = [labels_per_level[depth][_ancestor(paths[t], depth, taxa)] for t in inner]
-        frame[name] = ancestor
-    frame.update(
-        log_size=obs_x,
-        log_trait=obs_y,
-        n_rows=np.full(n, replicates or 1),
-        within_sd_log_size=within_x,
-        within_sd_log_trait=within_y,
-        sd_log_size=sd_x,
-        sd_log_trait=sd_y,
-        sd_source_size=source,
-        sd_source_trait=source,
-        source="simulated",
-        flag_outlier=False,
-        flag_singleton_taxon=False,
+    # the label of the ancestor at each depth of each species' innermost taxon
+    taxa_columns = {
+        name: [labels_per_level[depth][_ancestor(paths[t], depth, taxa)] for t in inner]
+        for depth, name in enumerate(names)
+    }
+    data = clean_frame(
+        [f"species_{i + 1:03d}" for i in range(n)], obs_x, obs_y, taxa=taxa_columns,
+        sd_log_size=sd_x, sd_log_trait=sd_y, replicates=replicates, within=(within_x, within_y),
+        source=f"simulated (seed {seed})", source_label="simulated",
     )
-    data = pd.DataFrame(frame)
-    data.attrs["source"] = f"simulated (seed {seed})"
     truth["true_log_size"] = true_x
     if size_error_sd > 0:
         truth["reliability"] = log_size_sd**2 / (log_size_sd**2 + size_error_sd**2)
@@ -312,6 +300,39 @@ def as_clean_table(
     source: str = "table",
 ) -> pd.DataFrame:
     """Wrap arrays (e.g. a published table) as a ``clean.csv`` table, one row per species."""
+    return clean_frame(species, log_size, log_trait, taxa=taxa, sd_log_size=sd_log_size,
+                       sd_log_trait=sd_log_trait, source=source, source_label=source)
+
+
+def clean_frame(
+    species: list[str] | np.ndarray,
+    log_size: np.ndarray,
+    log_trait: np.ndarray,
+    *,
+    taxa: dict[str, list[str] | np.ndarray] | None = None,
+    sd_log_size: np.ndarray | float | None = None,
+    sd_log_trait: np.ndarray | float | None = None,
+    replicates: int | None = None,
+    within: tuple[np.ndarray, np.ndarray] | None = None,
+    source: str,
+    source_label: str,
+) -> pd.DataFrame:
+    """One ``clean.csv`` table, one row per species: the single place the test data build it.
+
+    Parameters
+    ----------
+    taxa
+        Level name -> each species' taxon label, outer level first.
+    sd_log_size, sd_log_trait
+        Error SDs of the species values (``None``: no error column, source ``none``).
+    replicates
+        Rows per species; with it the SDs are marked as coming from replicates
+        (``sd_source = replicates``), as ``allolaw prepare`` writes them, else ``given``.
+    within
+        Replicate SDs of log size and log trait (the ``within_sd_*`` columns); NaN without.
+    source
+        Provenance kept in ``data.attrs["source"]``; ``source_label`` fills the ``source`` column.
+    """
     n = len(log_size)
     frame: dict[str, Any] = {"species": [str(s) for s in species]}
     for level, labels in (taxa or {}).items():
@@ -320,17 +341,22 @@ def as_clean_table(
     def column(sd: np.ndarray | float | None) -> np.ndarray:
         return np.full(n, np.nan) if sd is None else np.broadcast_to(sd, (n,)).astype(float)
 
+    def sd_source(sd: np.ndarray | float | None) -> str:
+        if sd is None:
+            return "none"
+        return "given" if replicates is None else "replicates"
+
     frame.update(
         log_size=np.asarray(log_size, dtype=float),
         log_trait=np.asarray(log_trait, dtype=float),
-        n_rows=np.ones(n, dtype=int),
-        within_sd_log_size=np.full(n, np.nan),
-        within_sd_log_trait=np.full(n, np.nan),
+        n_rows=np.full(n, replicates or 1, dtype=int),
+        within_sd_log_size=np.full(n, np.nan) if within is None else column(within[0]),
+        within_sd_log_trait=np.full(n, np.nan) if within is None else column(within[1]),
         sd_log_size=column(sd_log_size),
         sd_log_trait=column(sd_log_trait),
-        sd_source_size="given" if sd_log_size is not None else "none",
-        sd_source_trait="given" if sd_log_trait is not None else "none",
-        source=source,
+        sd_source_size=sd_source(sd_log_size),
+        sd_source_trait=sd_source(sd_log_trait),
+        source=source_label,
         flag_outlier=False,
         flag_singleton_taxon=False,
     )

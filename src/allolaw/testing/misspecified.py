@@ -25,9 +25,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 
-from allolaw.testing.data import Simulated
+from allolaw.testing.data import Simulated, clean_frame
 
 __all__ = [
     "DESIGNS",
@@ -99,8 +98,7 @@ def simulate_spread_taxa(
     error_var = within_sd**2 * (1.0 - lam) / lam
     factor = rng.uniform(1.0 - error_spread, 1.0 + error_spread, tree.n)
     sd_x = np.sqrt(error_var[tree.inner] * factor)
-    true_x = tree.centre + rng.normal(0.0, within_sd, tree.n)
-    true_y = tree.mean_trait(true_x) + rng.normal(0.0, sigma, tree.n)
+    true_x, true_y = tree.draw_species(rng, within_sd, sigma)
     obs_x = true_x + sd_x * rng.normal(size=tree.n)
     sim = _assemble(tree, seed, obs_x, true_y, sd_x, np.zeros(tree.n))
     sim.truth.update(sigma=sigma, true_log_size=true_x, within_sd=within_sd,
@@ -139,8 +137,7 @@ def simulate_correlated_errors(
     beta_w = exponent if within_species_exponent is None else within_species_exponent
     tree = _tree(rng, (genera,), ("genus",), species_per_genus, intercept, exponent,
                  intercept_sd, exponent_sd, (centre_sd,))
-    true_x = tree.centre + rng.normal(0.0, within_sd, tree.n)
-    true_y = tree.mean_trait(true_x) + rng.normal(0.0, sigma, tree.n)
+    true_x, true_y = tree.draw_species(rng, within_sd, sigma)
     d = rng.normal(0.0, individual_size_sd, (tree.n, individuals))
     e = rng.normal(0.0, individual_trait_sd, (tree.n, individuals))
     ind_x = true_x[:, None] + d
@@ -183,8 +180,7 @@ def simulate_taxon_scatter(
     tree = _tree(rng, (genera,), ("genus",), species_per_genus, intercept, exponent,
                  intercept_sd, exponent_sd, (centre_sd,))
     sigmas = rng.permutation(np.geomspace(sigma_range[0], sigma_range[1], genera))
-    true_x = tree.centre + rng.normal(0.0, within_sd, tree.n)
-    true_y = tree.mean_trait(true_x) + sigmas[tree.inner] * rng.normal(size=tree.n)
+    true_x, true_y = tree.draw_species(rng, within_sd, sigmas[tree.inner])
     sd_x = np.full(tree.n, size_error_sd)
     obs_x = true_x + sd_x * rng.normal(size=tree.n)
     sim = _assemble(tree, seed, obs_x, true_y, sd_x, np.zeros(tree.n))
@@ -215,8 +211,7 @@ def simulate_three_levels(
     rng = np.random.default_rng(seed)
     tree = _tree(rng, taxa, ("order", "family", "genus"), species_per_genus, intercept,
                  exponent, intercept_sd, exponent_sd, centre_sds)
-    true_x = tree.centre + rng.normal(0.0, within_sd, tree.n)
-    true_y = tree.mean_trait(true_x) + rng.normal(0.0, sigma, tree.n)
+    true_x, true_y = tree.draw_species(rng, within_sd, sigma)
     sd_x = np.full(tree.n, size_error_sd)
     obs_x = true_x + sd_x * rng.normal(size=tree.n)
     sim = _assemble(tree, seed, obs_x, true_y, sd_x, np.zeros(tree.n))
@@ -242,6 +237,14 @@ class _Tree:
     def mean_trait(self, true_x: np.ndarray) -> np.ndarray:
         # log reference size 0
         return self.a + self.b * true_x
+
+    def draw_species(
+        self, rng: np.random.Generator, within_sd: float, sigma: float | np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """True log sizes around each taxon's mean, true log traits on the taxon laws."""
+        true_x = self.centre + rng.normal(0.0, within_sd, self.n)
+        true_y = self.mean_trait(true_x) + sigma * rng.normal(size=self.n)
+        return true_x, true_y
 
 
 def _tree(
@@ -300,27 +303,11 @@ def _assemble(
     replicates: int | None = None,
     within: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> Simulated:
-    n = tree.n
-    frame: dict[str, Any] = {"species": [f"species_{i + 1:03d}" for i in range(n)]}
-    for name, labels in zip(tree.names, tree.species_labels, strict=True):
-        frame[name] = labels
-    nan = np.full(n, np.nan)
-    source = "given" if replicates is None else "replicates"
-    frame.update(
-        log_size=log_size,
-        log_trait=log_trait,
-        n_rows=np.full(n, replicates or 1),
-        within_sd_log_size=nan if within is None else within[0],
-        within_sd_log_trait=nan if within is None else within[1],
-        sd_log_size=sd_size,
-        sd_log_trait=sd_trait,
-        sd_source_size=source,
-        sd_source_trait=source,
-        source="simulated",
-        flag_outlier=False,
-        flag_singleton_taxon=False,
+    data = clean_frame(
+        [f"species_{i + 1:03d}" for i in range(tree.n)], log_size, log_trait,
+        taxa=dict(zip(tree.names, tree.species_labels, strict=True)),
+        sd_log_size=sd_size, sd_log_trait=sd_trait, replicates=replicates, within=within,
+        source=f"simulated (seed {seed})", source_label="simulated",
     )
-    data = pd.DataFrame(frame)
-    data.attrs["source"] = f"simulated (seed {seed})"
     return Simulated(data=data, levels=list(tree.names), log_reference_size=0.0,
                      truth=dict(tree.truth))
