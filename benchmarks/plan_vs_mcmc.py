@@ -17,21 +17,13 @@ import time
 from pathlib import Path
 
 from allolaw.planning.design import read_plan
-from allolaw.planning.mcmc_check import check_against_mcmc, pick_tables
+from allolaw.planning.mcmc_check import (
+    CHECK_CONFIG,
+    check_against_mcmc,
+    converged_references,
+    pick_tables,
+)
 from allolaw.planning.simulate import DesignPrior
-
-CONFIG = {
-    "hypotheses": {"exponents": [{"name": "surface law", "value": 0.6667, "weight": 1},
-                                 {"name": "metabolic law", "value": 0.75, "weight": 1},
-                                 {"name": "isometry", "value": 1.0, "weight": 1}],
-                   "other_weight": 1, "interval_halfwidth": 0.03},
-    "plans": {"check": {
-        "truth": {"exponent": 0.75, "intercept_sd": 0.3, "exponent_sd": 0.05,
-                  "scatter_sd": 0.2},
-        "designs": {"species": [20, 60], "taxa": [4, 10], "size_range": [4.0],
-                    "size_error_sd": [0.0, 0.2]},
-        "simulations": 100, "seed": 20261204}},
-}
 
 
 def main() -> None:
@@ -41,21 +33,19 @@ def main() -> None:
     parser.add_argument("--cache", default=None,
                         help="folder keeping each MCMC result (a rerun refits nothing)")
     args = parser.parse_args()
-    plan = read_plan(CONFIG, "check")
+    plan = read_plan(CHECK_CONFIG, "check")
     start = time.perf_counter()
     rows = check_against_mcmc(plan, DesignPrior.point(plan.truth),
                               pick_tables(plan, args.tables), cache=args.cache)
     within = (rows["abs_difference"] <= 0.05)
-    # R-hat 1.01 (Vehtari et al. 2021, Bayesian Analysis 16:667-718): a fit above it is not
-    # a reference for the approximation; its row is kept and counted apart
-    converged = (rows["rhat_max"] <= 1.01) & (rows["divergences"] == 0)
+    converged = converged_references(rows)
     result = {
         "tables": len(rows), "share_within_0.05": float(within.mean()),
         "converged_fits": int(converged.sum()),
         "share_within_0.05_converged": float(within[converged].mean()),
         "max_abs_difference": float(rows["abs_difference"].max()),
         "wall_seconds": round(time.perf_counter() - start, 1),
-        "config": CONFIG, "rows": rows.to_dict(orient="records"),
+        "config": CHECK_CONFIG, "rows": rows.to_dict(orient="records"),
     }
     Path(args.out).write_text(json.dumps(result, indent=1))
     print(rows[["design", "table", "model", "true_hypothesis", "prob_fast", "prob_mcmc",

@@ -24,7 +24,32 @@ from allolaw.planning.decide import named_probabilities, true_hypothesis
 from allolaw.planning.design import Plan
 from allolaw.planning.simulate import DesignPrior, SimulatedTables, simulate_tables
 
-__all__ = ["check_against_mcmc", "clean_table", "pick_tables"]
+__all__ = ["CHECK_CONFIG", "check_against_mcmc", "clean_table", "converged_references",
+           "pick_tables"]
+
+#: The configuration of the check (invented truth near the metabolic law: exponent 0.75, taxon
+#: SDs 0.3 and 0.05, scatter 0.2), shared by the slow test and benchmarks/plan_vs_mcmc.py.
+CHECK_CONFIG: dict[str, Any] = {
+    "hypotheses": {"exponents": [{"name": "surface law", "value": 0.6667, "weight": 1},
+                                 {"name": "metabolic law", "value": 0.75, "weight": 1},
+                                 {"name": "isometry", "value": 1.0, "weight": 1}],
+                   "other_weight": 1, "interval_halfwidth": 0.03},
+    "plans": {"check": {
+        "truth": {"exponent": 0.75, "intercept_sd": 0.3, "exponent_sd": 0.05,
+                  "scatter_sd": 0.2},
+        "designs": {"species": [20, 60], "taxa": [4, 10], "size_range": [4.0],
+                    "size_error_sd": [0.0, 0.2]},
+        "simulations": 100, "seed": 20261204}},
+}
+
+
+def converged_references(rows: pd.DataFrame) -> pd.Series:
+    """Which MCMC fits count as references: R-hat <= 1.01 and no divergences.
+
+    A fit above R-hat 1.01 or with divergences is no reference for the approximation (Vehtari
+    et al. 2021, Bayesian Analysis 16:667-718); its row is kept and counted apart.
+    """
+    return (rows["rhat_max"] <= 1.01) & (rows["divergences"] == 0)
 
 
 def pick_tables(plan: Plan, count: int) -> list[tuple[int, int]]:
