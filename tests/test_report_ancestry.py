@@ -93,9 +93,18 @@ def test_strip_of_10000_species_has_at_most_max_bins_cells_holding_bin_means():
     assert len(svg) < 120_000
 
 
-def test_strip_of_few_species_has_one_cell_per_species():
-    svg = residual_strip_svg(np.array([0.1, -0.2, 0.3]), None)
-    assert len(re.findall(r"mean departure", svg)) == 3
+def test_strip_of_few_species_has_one_cell_per_species_named_on_hover():
+    svg = residual_strip_svg(np.array([0.1, -0.2, 0.3]), None, names=["A b", "C d", "E <f>"])
+    assert re.findall(r"<title>(.*?) departure", svg) == ["A b", "C d", "E &lt;f&gt;"]
+
+
+def test_one_outlier_does_not_pale_the_strip():
+    values = np.r_[np.linspace(-0.2, 0.2, 99), 5.0]
+    svg = residual_strip_svg(values, None)
+    fills = re.findall(r'fill="(#[0-9a-f]{6})"><title>', svg)
+    # the 95th percentile of |values| sets full colour: the second-largest cells are saturated
+    assert fills[-2] == "#d55e00"
+    assert fills[-1] == "#d55e00"
 
 
 def test_section_compares_lambda_with_its_uniform_prior_and_the_exponent_without_the_tree(

@@ -109,21 +109,22 @@ def tree_order_residuals(idata: Any, log_trait: pd.Series, tree_file: Path,
 
 
 def residual_strip_svg(
-    residuals: np.ndarray, groups: list[str] | None, *, max_bins: int = MAX_BINS,
-    width: int = 760, title: str = "",
+    residuals: np.ndarray, groups: list[str] | None, *, names: list[str] | None = None,
+    max_bins: int = MAX_BINS, width: int = 760, title: str = "",
 ) -> str:
     """A heat line of residuals in tree order (binned means) above a strip of taxon colours.
 
     Each cell is the mean of the species in one bin, coloured from blue (below the law) to
-    vermillion (above), symmetric around 0 at the largest absolute bin mean; ``groups`` (one
-    label per species, same order) gives a second strip coloured by the most common label of
-    each bin.
+    vermillion (above), symmetric around 0, full colour at the 95th percentile of the absolute
+    bin means (so one outlier does not pale the rest; larger values are clipped); ``groups``
+    (one label per species, same order) gives a second strip coloured by the most common label
+    of each bin; ``names`` (species names) label the cells that hold one species.
     """
     n = len(residuals)
     k = max(1, min(max_bins, n))
     edges = np.linspace(0, n, k + 1).round().astype(int)
     means = np.array([residuals[a:b].mean() for a, b in itertools.pairwise(edges)])
-    scale = float(np.max(np.abs(means))) or 1.0
+    scale = float(np.quantile(np.abs(means), 0.95)) or 1.0
     height = 124 if groups else 96
     ax = Axes(width, height, (0.0, float(n)), (0.0, 1.0), log_x=False, log_y=False, left=92,
               right=20, top=22, bottom=height - 58)
@@ -133,9 +134,11 @@ def residual_strip_svg(
              f'fill="{INK}">departure</text>']
     for (a, b), value in zip(itertools.pairwise(edges), means, strict=True):
         x0, x1 = ax.px(a), ax.px(b)
+        what = (_esc(names[a]) if names is not None and b - a == 1
+                else f"species {a + 1}–{b}: mean")
         parts.append(f'<rect x="{x0:.2f}" y="26" width="{max(x1 - x0, 0.5):.2f}" height="30" '
-                     f'fill="{_diverging(value / scale)}"><title>species {a + 1}–{b}: mean '
-                     f"departure {value:+.3f}</title></rect>")
+                     f'fill="{_diverging(value / scale)}"><title>{what} departure '
+                     f"{value:+.3f}</title></rect>")
     if groups:
         colours = charts.taxon_colours(groups)
         parts.append(f'<text x="{ax.left - 6}" y="74" text-anchor="end" font-size="11" '
@@ -149,7 +152,7 @@ def residual_strip_svg(
     y_key = height - 18
     parts.append(f'<text x="{ax.left}" y="{y_key}" font-size="11" fill="{MUTED}">colour: '
                  f"blue below the law, vermillion above; full colour at ±{scale:.3g} "
-                 "(natural-log units)</text>")
+                 "(natural-log units; beyond it clipped)</text>")
     return ax.wrap("".join(parts), title or "residuals in tree order")
 
 
@@ -209,7 +212,8 @@ def _strip(idata: Any, clean: pd.DataFrame, levels: list[str], tree_file: Path) 
     values = resid.to_numpy()
     groups = (table.loc[resid.index, levels[0]].astype(str).tolist() if levels else None)
     neighbours = float(np.corrcoef(values[:-1], values[1:])[0, 1]) if len(values) > 2 else None
-    return {"svg": Markup(residual_strip_svg(values, groups)), "n": len(values),
+    svg = residual_strip_svg(values, groups, names=list(resid.index))
+    return {"svg": Markup(svg), "n": len(values),
             "neighbour_correlation": neighbours, "level": levels[0] if levels else None}
 
 
