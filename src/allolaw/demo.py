@@ -8,7 +8,9 @@ compare a fit with the truth.
 - ``island_metabolism``: resting metabolic rate (W) against body mass (g) of 172 species in 10
   families of 3 orders, measured by two field teams with different unit habits; exponent 0.75
   at 100 g, family exponent deviations (SD 0.05), order and family intercept shifts, error in
-  mass, a mild body-temperature effect; 30 species measured by both teams.
+  mass, a mild body-temperature effect; 30 species measured by both teams; residuals that
+  evolve along an invented tree of the species (``island_metabolism_tree.nwk``, from
+  ``demo_tree.py``).
 - ``tree_biomass``: above-ground mass (kg) against trunk diameter (cm), 36 species in 6 genera,
   one curved law (local exponent 8/3 at 20 cm, curvature −0.15 per (ln cm)²); the genera
   occupy different diameter ranges, so the curve can look like genus differences.
@@ -30,6 +32,7 @@ from typing import Any
 
 import numpy as np
 
+from allolaw.demo_tree import island_tree
 from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 from allolaw.io import atomic_path, write_text
 
@@ -78,9 +81,12 @@ def write_demo_data(out: str | Path, *, seed: int | None = None) -> list[Path]:
         ("cell_scaling", _cell_scaling, streams[2]),
     ):
         files, params = make(rng)
-        for filename, (header, rows, delimiter) in files.items():
+        for filename, content in files.items():
             path = out / filename
-            _write_table(path, header, rows, delimiter)
+            if isinstance(content, str):  # the island survey's tree (Newick text)
+                write_text(path, content)
+            else:
+                _write_table(path, *content)
             paths.append(path)
         truth[name] = params
     truth_path = out / "truth.json"
@@ -118,6 +124,9 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
     temp_centre_k = 310.65  # 37.5 °C
     energy = DEFAULT_ENERGY_PER_ML_O2_JOULE
 
+    file_a = "island_metabolism_team_a.csv"
+    file_b = "island_metabolism_team_b.tsv"
+    file_tree = "island_metabolism_tree.nwk"
     families = [f for fams in orders.values() for f in fams]
     order_of = {f: o for o, fams in orders.items() for f in fams}
     order_shift = _centred(rng.normal(0.0, 0.25, len(orders)))
@@ -148,6 +157,12 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
                 {"species": name, "order": order_of[fam], "family": fam,
                  "log_mass": log_mass, "mu": float(mu), "temp": temp}
             )
+
+    # Shared ancestry (demo_tree.py): residuals along an invented tree, from a child stream.
+    ancestry = island_tree(species, rng=rng.spawn(1)[0], sd=0.15, independent_sd=sigma,
+                           file=file_tree)
+    for sp in species:
+        sp["mu"] += ancestry.residual[sp["species"]]
 
     # Team assignment: shuffle, first 110 to team A, from the 81st on to team B: 30 by both.
     picks = rng.permutation(len(species))
@@ -182,8 +197,6 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
                 rows_b.append([sp["species"], sp["order"], sp["family"], _fmt(mass), mass_unit,
                                _fmt(rate), rate_unit, _fmt(temp_c, 3)])
 
-    file_a = "island_metabolism_team_a.csv"
-    file_b = "island_metabolism_team_b.tsv"
     blemishes: list[dict[str, Any]] = []
     # Team A: a missing rate, a zero mass, an exact duplicate line, a decimal slip (×100).
     rows_a.insert(12, [*rows_a[11][:4], "NA", rows_a[11][5]])
@@ -243,16 +256,19 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
         "n_species_both_teams": len(team_a & team_b),
         "rows": {file_a: len(rows_a), file_b: len(rows_b)},
         "blemishes": blemishes,
+        "shared_ancestry": ancestry.truth,
         "notes": (
             "log W = intercept + order shift + family shift + family exponent·(ln g − ln 100) "
-            "+ coef·(T_K − 310.65) + N(0, sigma) per species; each row adds N(0, size_error_sd) "
-            "to ln mass and N(0, trait_error_sd) to ln rate. Deviations are centred to sum to "
+            "+ coef·(T_K − 310.65) + N(0, sigma) + tree residual (shared_ancestry) per "
+            "species; each row adds N(0, size_error_sd) to ln mass and N(0, trait_error_sd) "
+            "to ln rate. Deviations are centred to sum to "
             "zero over the taxa drawn. Team A wrote mL O2/h = W·3600/20.1."
         ),
     }
     files = {
         file_a: (header_a, rows_a, ","),
         file_b: (header_b, rows_b, "\t"),
+        file_tree: ancestry.newick,
     }
     return files, params
 

@@ -31,7 +31,9 @@ wildcard_constraints:
 
 
 def dataset_sources(wildcards):
-    return [s["file"] for s in CONFIG["datasets"][wildcards.dataset]["sources"]]
+    # the data files and the dataset's tree (a changed tree reruns prepare)
+    ds = CONFIG["datasets"][wildcards.dataset]
+    return [s["file"] for s in ds["sources"]] + ([ds["tree"]] if ds.get("tree") else [])
 
 
 def model_spec(wildcards):

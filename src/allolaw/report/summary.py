@@ -16,6 +16,7 @@ import pandas as pd
 from allolaw import __version__, paths
 from allolaw.config import dataset_config, hypotheses_config
 from allolaw.model.spec import models_to_fit
+from allolaw.report.ancestry import ancestry_section
 from allolaw.report.figures import build_figures
 from allolaw.report.formatting import fmt, now, pct, unit_text
 from allolaw.report.sections import (
@@ -122,6 +123,9 @@ def summarise_dataset(
     context["figures"] = (
         build_figures(ds, fits, primary, clean, levels, units, config, dataset) if figures else {}
     )
+    context["ancestry"] = (  # models with shared ancestry (report/ancestry.py)
+        ancestry_section(fits, primary, models, clean, levels,
+                         paths.tree_path(results, dataset)) if figures else [])
     return context
 
 
