@@ -186,6 +186,8 @@ def _data_terms(
     obs = getattr(idata, "observed_data", None)
     if const is None or obs is None or "trait" not in obs or "sigma" not in post:
         return None
+    if "within_log_size" in const:
+        return None  # a within/between split: the exponent acts on group means, not sizes
     y = np.asarray(obs["trait"].values, dtype=float)
     n_species = y.size
     if "true_log_size" in post:
