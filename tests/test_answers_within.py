@@ -58,11 +58,13 @@ def _split_fit(within_mean: float, between_mean: float, sd: float, n: int = 2000
     )
 
 
-def _savage_dickey_probs(mean: float, sd: float) -> dict[str, float]:
-    # Closed form for a normal posterior N(mean, sd) and the N(0.75, 0.5) prior: the Bayes
-    # factor of each named value is the ratio of the two normal densities there (Dickey 1971;
-    # Wagenmakers et al. 2010, eq. 4); equal prior weights for the two values and "another".
-    bf = {name: stats.norm.pdf(v, mean, sd) / stats.norm.pdf(v, 0.75, 0.5)
+def _savage_dickey_probs(mean: float, sd: float, prior: tuple[float, float] = (0.75, 0.5)
+                         ) -> dict[str, float]:
+    # Closed form for a normal posterior N(mean, sd) and a normal prior (default N(0.75, 0.5)):
+    # the Bayes factor of each named value is the ratio of the two normal densities there
+    # (Dickey 1971; Wagenmakers et al. 2010, eq. 4); equal prior weights for the two values
+    # and "another".
+    bf = {name: stats.norm.pdf(v, mean, sd) / stats.norm.pdf(v, *prior)
           for name, v in (("three quarters", 0.75), ("isometry", 1.0))}
     total = sum(bf.values()) + 1.0
     return {**{k: b / total for k, b in bf.items()}, "another value": 1.0 / total}
@@ -120,3 +122,55 @@ def test_headline_block_says_why_without_a_split():
     block = within_between_block({"plain": together}, pd.DataFrame(), {})
     assert block["applicable"] is False
     assert "within_species" in block["reason"]
+
+
+def test_compare_stage_writes_within_rows_and_the_headline_block(tmp_path):
+    # The compare stage on one hand-built fit of models/individuals_within.yaml (known draws,
+    # no prepared set): hypotheses.csv holds its within_exponent rows, headline.json the
+    # within_between block, both from the same draws.
+    import json
+    from pathlib import Path
+
+    from allolaw import paths
+    from allolaw.answers.dataset import compare_dataset
+    from allolaw.config import validate_config
+
+    repo = Path(__file__).resolve().parents[1]
+    config = validate_config({
+        "results_dir": str(tmp_path / "results"), "reports_dir": str(tmp_path / "reports"),
+        "models_dir": str(repo / "models"),
+        "datasets": {"trees": {
+            "hypotheses": {**SETTINGS, "bounds": []},
+            "size": {"quantity": "length", "unit": "cm"},
+            "trait": {"quantity": "mass", "unit": "kg"},
+            "rows_are": "individuals",
+            "sources": [{"file": "trees.csv", "columns": {
+                "species": "species", "size": "d", "trait": "m", "levels": []}}],
+            "models": ["individuals_within"]}}})
+    idata = _split_fit(within_mean=0.98, between_mean=0.76, sd=0.05, n=2000)
+    y = idata.observed_data["trait"].values
+    idata.add_groups(log_likelihood={"trait": stats.norm.logpdf(
+        np.broadcast_to(y, (2, 2000, y.size)), 0.0, 1.0)})
+    out = paths.posterior_path(config["results_dir"], "trees", "individuals_within")
+    out.parent.mkdir(parents=True)
+    idata.to_netcdf(str(out))
+
+    compare_dataset(config, "trees")
+    hyp = pd.read_csv(paths.hypotheses_path(config["results_dir"], "trees"))
+    within = hyp[hyp["parameter"] == "within_exponent"]
+    assert set(within["model"]) == {"individuals_within"}
+    assert list(within["hypothesis"]) == ["three quarters", "isometry", "another value"]
+    block = json.loads(paths.headline_path(config["results_dir"], "trees").read_text())
+    entry = block["within_between"]["models"]["individuals_within"]
+    between = idata.posterior["exponent"].values.ravel()
+    within_draws = idata.posterior["within_exponent"].values.ravel()
+    assert entry["difference"]["median"] == pytest.approx(
+        float(np.median(within_draws - between)), abs=1e-12)
+    assert entry["p_within_steeper"] == pytest.approx(float(np.mean(within_draws > between)))
+    probs = within.set_index("hypothesis")["posterior_prob"]
+    assert entry["within_probs"]["isometry"] == pytest.approx(probs["isometry"])
+    from allolaw.model.spec import load_spec
+
+    prior = load_spec(repo / "models", "individuals_within").priors["within_exponent"]
+    assert entry["within_probs"]["isometry"] == pytest.approx(_savage_dickey_probs(
+        0.98, 0.05, (prior["mean"], prior["sd"]))["isometry"], abs=0.02)

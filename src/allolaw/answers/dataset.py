@@ -121,6 +121,7 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
         parts.append(part)
         within = within_hypotheses(idata, specs[model], settings)  # empty without a split
         if not within.empty:
+            within["model"] = model
             within["check_verdict"] = verdicts[model]
             parts.append(within)
     hyp = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
