@@ -74,6 +74,8 @@ def test_page_states_both_exponents_their_difference_and_its_probability(pages):
     assert "within species another value (probability 0.790)" in item
     assert "between species metabolic law (probability 0.610)" in item
     assert '<table id="table-within"' in split
+    lead = re.search(r'<p class="big" id="headline-exponent">(.*?)</p>', split, re.S).group(1)
+    assert lead.startswith("Between-species exponent (species means)")
 
 
 def test_page_without_a_split_says_nothing_about_within_species(pages):

@@ -43,7 +43,9 @@ def within_section(head: dict[str, Any] | None, primary: str) -> dict[str, Any] 
     dict or None
         ``answer`` (the primary model's sentence, else the first model's), ``rows`` (one per
         model with a split: ``model``, ``within``, ``between``, ``difference``,
-        ``p_within_steeper``, ``sentence``, ``check_verdict``), ``interval``.
+        ``p_within_steeper``, ``sentence``, ``check_verdict``), ``primary_split`` (the primary
+        model has the split: its population exponent is the between-species one),
+        ``interval``.
     """
     block = (head or {}).get("within_between") or {}
     if not block.get("applicable") or not block.get("models"):
@@ -55,7 +57,7 @@ def within_section(head: dict[str, Any] | None, primary: str) -> dict[str, Any] 
     answer = chosen["sentence"]
     if chosen["model"] != primary:
         answer = f"Model {chosen['model']}: {answer}"
-    return {"answer": answer, "rows": rows,
+    return {"answer": answer, "rows": rows, "primary_split": chosen["model"] == primary,
             "interval": float(rows[0].get("interval") or 0.9)}
 
 
