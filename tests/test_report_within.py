@@ -94,6 +94,13 @@ def test_scatter_draws_one_within_line_per_group_with_the_within_slope(pages):
     assert "within-species exponent (each species)" in _scatter(split)
 
 
+def test_scatter_caption_says_points_are_individuals_when_rows_are_individuals(tmp_path):
+    config = build_results(tmp_path)
+    config["datasets"]["demo"]["rows_are"] = "individuals"
+    html = rendering.render_dataset_report(config, "demo").read_text()
+    assert "Points: individuals, coloured by order" in html
+
+
 def test_within_line_has_the_median_within_slope_on_log_axes(pages):
     # the line of the first family runs through its mean log size and log trait with slope
     # WITHIN_SLOPE on log-log axes (the line's points, before they become SVG)

@@ -105,7 +105,8 @@ def build_figures(
         title="", width=940, height=540,
     ))
     figs["scatter_notes"] = (
-        "Points: species means, coloured by " + (colour_level or "species")
+        "Points: " + ("individuals" if ds.get("rows_are") == "individuals" else "species means")
+        + ", coloured by " + (colour_level or "species")
         + " (Okabe–Ito palette); a dark ring marks a flagged outlier. Dashed grey lines: the "
         "named exponents, drawn through the population law at the reference size. Hover a "
         "point for the species name."
