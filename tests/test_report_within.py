@@ -91,7 +91,7 @@ def test_scatter_draws_one_within_line_per_group_with_the_within_slope(pages):
     # the innermost level of the hand-built table is the family (4 families, 6 rows each)
     assert extra == clean["family"].nunique() == 4
     assert "between-species law (90% band)" in _scatter(split)
-    assert "within-species exponent (each species)" in _scatter(split)
+    assert "within-species lines" in _scatter(split)
 
 
 def test_scatter_caption_says_points_are_individuals_when_rows_are_individuals(tmp_path):

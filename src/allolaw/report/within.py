@@ -123,7 +123,7 @@ def within_lines(idata: Any, clean: pd.DataFrame, levels: list[str], colours: di
         b = own_slopes.get(str(group), slope)
         x = np.array([rows["x"].min(), rows["x"].max()])
         y = rows["y"].mean() + b * (x - rows["x"].mean())
-        label = "" if lines else "within-species exponent (each species)"
+        label = "" if lines else "within-species lines"
         lines.append(Band(np.exp(x), np.exp(y), label=label,
                           colour=colours.get(rows["taxon"].iloc[0], "#444444"), width=1.0))
     return lines
