@@ -236,13 +236,13 @@ def test_parametric_fit_prefers_student_t_for_heavy_tails_and_skew_normal_for_sk
 @pytest.mark.slow
 @pytest.mark.mcmc
 @pytest.mark.parametrize(("dataset", "model"), [
-    ("tree_biomass", "taxa_errors_curved"),
+    ("tree_biomass", "individuals_within"),
     ("cell_scaling", "breakpoint"),
     ("island_metabolism", "taxa_errors"),
 ])
 def test_demo_datasets_give_the_true_exponent_the_highest_probability(tmp_path, dataset, model):
-    # Known truth: data/demo/truth.json of the seeded invented demo (tree: 8/3 at the
-    # reference size; cells: isometry below the break).
+    # Known truth: data/demo/truth.json of the seeded invented demo (tree: 8/3 between
+    # species, the exponent of the within/between model; cells: isometry below the break).
     import json
     import os
     from pathlib import Path

@@ -2,9 +2,12 @@
 
 import arviz as az
 import numpy as np
+import pandas as pd
 import pytest
+from scipy import stats
 
-from allolaw.answers.within import compare_within_between
+from allolaw.answers.hypotheses import compare_hypotheses
+from allolaw.answers.within import compare_within_between, within_between_block, within_hypotheses
 
 
 def test_difference_and_its_probability_follow_the_draws():
@@ -24,3 +27,150 @@ def test_difference_and_its_probability_follow_the_draws():
 def test_a_fit_without_a_split_has_no_comparison():
     idata = az.from_dict(posterior={"exponent": np.zeros((1, 10))})
     assert compare_within_between(idata) is None
+
+
+# --- wiring into the compare stage: named values of both exponents, the headline block ---
+
+SETTINGS = {"exponents": [{"name": "three quarters", "value": 0.75, "weight": 1.0},
+                          {"name": "isometry", "value": 1.0, "weight": 1.0}],
+            "other_weight": 1.0, "interval_halfwidth": 0.03, "prior_scale_factors": [0.5, 2.0]}
+SPEC = {"name": "split", "residuals": "normal", "curvature": "none", "breakpoint": "none",
+        "priors": {"exponent": {"mean": 0.75, "sd": 0.5},
+                   "within_exponent": {"mean": 0.75, "sd": 0.5}}}
+
+
+def _split_fit(within_mean: float, between_mean: float, sd: float, n: int = 20000,
+               seed: int = 1) -> az.InferenceData:
+    rng = np.random.default_rng(seed)
+    n_obs = 12
+    return az.from_dict(
+        posterior={"within_exponent": rng.normal(within_mean, sd, (2, n)),
+                   "exponent": rng.normal(between_mean, sd, (2, n)),
+                   "intercept": rng.normal(0.0, 0.01, (2, n)),
+                   "sigma": np.abs(rng.normal(0.1, 0.01, (2, n)))},
+        observed_data={"trait": rng.normal(0.0, 1.0, n_obs)},
+        constant_data={"log_size_obs": rng.normal(0.0, 1.0, n_obs), "log_size_ref": 0.0,
+                       "within_log_size": rng.normal(0.0, 0.3, n_obs),
+                       "group_mean_log_size": rng.normal(0.0, 1.0, n_obs)},
+        dims={"trait": ["species"], "log_size_obs": ["species"],
+              "within_log_size": ["species"], "group_mean_log_size": ["species"]},
+        attrs={"model": "split", "dataset": "fake"},
+    )
+
+
+def _savage_dickey_probs(mean: float, sd: float, prior: tuple[float, float] = (0.75, 0.5)
+                         ) -> dict[str, float]:
+    # Closed form for a normal posterior N(mean, sd) and a normal prior (default N(0.75, 0.5)):
+    # the Bayes factor of each named value is the ratio of the two normal densities there
+    # (Dickey 1971; Wagenmakers et al. 2010, eq. 4); equal prior weights for the two values
+    # and "another".
+    bf = {name: stats.norm.pdf(v, mean, sd) / stats.norm.pdf(v, *prior)
+          for name, v in (("three quarters", 0.75), ("isometry", 1.0))}
+    total = sum(bf.values()) + 1.0
+    return {**{k: b / total for k, b in bf.items()}, "another value": 1.0 / total}
+
+
+def test_within_exponent_rows_follow_the_savage_dickey_ratio_of_its_draws():
+    idata = _split_fit(within_mean=0.98, between_mean=0.76, sd=0.05)
+    rows = within_hypotheses(idata, SPEC, SETTINGS)
+    assert set(rows["parameter"]) == {"within_exponent"}
+    assert (rows["taxon"] == "").all()
+    expected = _savage_dickey_probs(0.98, 0.05)
+    got = dict(zip(rows["hypothesis"], rows["posterior_prob"], strict=True))
+    for name, p in expected.items():
+        assert got[name] == pytest.approx(p, abs=0.01), name
+    assert got["isometry"] > 0.7
+
+
+def test_between_exponent_of_a_split_fit_is_not_given_the_sizes_conditional():
+    # With a split, the exponent multiplies the group-mean log size; the normal conditional
+    # built on observed log sizes would be the wrong model, so the density is fitted to the
+    # draws, and it still follows the closed form of a normal posterior.
+    idata = _split_fit(within_mean=0.98, between_mean=0.76, sd=0.05)
+    rows = compare_hypotheses(idata, SPEC, SETTINGS)
+    pop = rows[rows["taxon"].fillna("") == ""]
+    assert all("fitted to draws" in m for m in pop["method"])
+    got = dict(zip(pop["hypothesis"], pop["posterior_prob"], strict=True))
+    for name, p in _savage_dickey_probs(0.76, 0.05).items():
+        assert got[name] == pytest.approx(p, abs=0.01), name
+
+
+def test_headline_block_holds_both_exponents_their_difference_and_probabilities():
+    idata = _split_fit(within_mean=1.0, between_mean=0.75, sd=0.05)
+    hyp = pd.concat([compare_hypotheses(idata, SPEC, SETTINGS).assign(model="split"),
+                     within_hypotheses(idata, SPEC, SETTINGS)], ignore_index=True)
+    together = az.from_dict(posterior={"exponent": np.full((1, 10), 0.7)})
+    block = within_between_block({"split": idata, "plain": together}, hyp,
+                                 {"split": "pass"})
+    assert block["applicable"] is True
+    assert list(block["models"]) == ["split"]
+    entry = block["models"]["split"]
+    # difference of independent N(1.0, 0.05) and N(0.75, 0.05): N(0.25, 0.0707), 90% interval
+    # 0.25 ± 1.6449·0.0707 (closed form)
+    assert entry["difference"]["median"] == pytest.approx(0.25, abs=0.003)
+    assert entry["difference"]["high"] == pytest.approx(0.25 + 1.6449 * 0.0707, abs=0.005)
+    assert entry["p_within_steeper"] == pytest.approx(0.9998, abs=0.001)
+    assert entry["within_probs"]["isometry"] == pytest.approx(
+        _savage_dickey_probs(1.0, 0.05)["isometry"], abs=0.01)
+    assert entry["between_probs"]["three quarters"] == pytest.approx(
+        _savage_dickey_probs(0.75, 0.05)["three quarters"], abs=0.01)
+    assert entry["check_verdict"] == "pass"
+
+
+def test_headline_block_says_why_without_a_split():
+    together = az.from_dict(posterior={"exponent": np.full((1, 10), 0.7)})
+    block = within_between_block({"plain": together}, pd.DataFrame(), {})
+    assert block["applicable"] is False
+    assert "within_species" in block["reason"]
+
+
+def test_compare_stage_writes_within_rows_and_the_headline_block(tmp_path):
+    # The compare stage on one hand-built fit of models/individuals_within.yaml (known draws,
+    # no prepared set): hypotheses.csv holds its within_exponent rows, headline.json the
+    # within_between block, both from the same draws.
+    import json
+    from pathlib import Path
+
+    from allolaw import paths
+    from allolaw.answers.dataset import compare_dataset
+    from allolaw.config import validate_config
+
+    repo = Path(__file__).resolve().parents[1]
+    config = validate_config({
+        "results_dir": str(tmp_path / "results"), "reports_dir": str(tmp_path / "reports"),
+        "models_dir": str(repo / "models"),
+        "datasets": {"trees": {
+            "hypotheses": {**SETTINGS, "bounds": []},
+            "size": {"quantity": "length", "unit": "cm"},
+            "trait": {"quantity": "mass", "unit": "kg"},
+            "rows_are": "individuals",
+            "sources": [{"file": "trees.csv", "columns": {
+                "species": "species", "size": "d", "trait": "m", "levels": []}}],
+            "models": ["individuals_within"]}}})
+    idata = _split_fit(within_mean=0.98, between_mean=0.76, sd=0.05, n=2000)
+    y = idata.observed_data["trait"].values
+    idata.add_groups(log_likelihood={"trait": stats.norm.logpdf(
+        np.broadcast_to(y, (2, 2000, y.size)), 0.0, 1.0)})
+    out = paths.posterior_path(config["results_dir"], "trees", "individuals_within")
+    out.parent.mkdir(parents=True)
+    idata.to_netcdf(str(out))
+
+    compare_dataset(config, "trees")
+    hyp = pd.read_csv(paths.hypotheses_path(config["results_dir"], "trees"))
+    within = hyp[hyp["parameter"] == "within_exponent"]
+    assert set(within["model"]) == {"individuals_within"}
+    assert list(within["hypothesis"]) == ["three quarters", "isometry", "another value"]
+    block = json.loads(paths.headline_path(config["results_dir"], "trees").read_text())
+    entry = block["within_between"]["models"]["individuals_within"]
+    between = idata.posterior["exponent"].values.ravel()
+    within_draws = idata.posterior["within_exponent"].values.ravel()
+    assert entry["difference"]["median"] == pytest.approx(
+        float(np.median(within_draws - between)), abs=1e-12)
+    assert entry["p_within_steeper"] == pytest.approx(float(np.mean(within_draws > between)))
+    probs = within.set_index("hypothesis")["posterior_prob"]
+    assert entry["within_probs"]["isometry"] == pytest.approx(probs["isometry"])
+    from allolaw.model.spec import load_spec
+
+    prior = load_spec(repo / "models", "individuals_within").priors["within_exponent"]
+    assert entry["within_probs"]["isometry"] == pytest.approx(_savage_dickey_probs(
+        0.98, 0.05, (prior["mean"], prior["sd"]))["isometry"], abs=0.02)

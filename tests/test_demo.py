@@ -127,30 +127,69 @@ def test_island_data_recover_the_exponent_by_least_squares():
     assert fit.bse["x"] < 0.04
 
 
-def test_tree_law_is_curved_with_8_3_at_20_cm():
-    # Quadratic in d = ln cm − ln 20 by statsmodels OLS over all trees: slope at d = 0 near 8/3,
-    # curvature near −0.15 (the truth in truth.json).
-    truth = json.loads((DEMO / "truth.json").read_text())["tree_biomass"]
-    assert truth["exponent"] == pytest.approx(8 / 3)
-    assert truth["curvature"] == -0.15
+def _trees() -> pd.DataFrame:
     trees = _numeric(_read("tree_biomass.csv"), "diameter_cm", "mass_kg")
-    trees = trees[trees["diameter_cm"] > 0]
-    d = np.log(trees["diameter_cm"]) - math.log(20.0)
-    design = sm.add_constant(np.column_stack([d, d**2]))
-    fit = sm.OLS(np.log(trees["mass_kg"]).to_numpy(), design).fit()
-    assert fit.params[1] == pytest.approx(8 / 3, abs=4 * fit.bse[1])
-    assert fit.params[2] == pytest.approx(-0.15, abs=4 * fit.bse[2])
-    assert fit.params[2] + 4 * fit.bse[2] < 0  # the curvature is visible in the data
+    trees = trees[trees["diameter_cm"] > 0].copy()
+    trees["x"] = np.log(trees["diameter_cm"])
+    trees["y"] = np.log(trees["mass_kg"])
+    return trees
 
 
-def test_tree_genera_occupy_different_diameter_ranges():
-    trees = _numeric(_read("tree_biomass.csv"), "diameter_cm", "mass_kg")
-    trees = trees[trees["diameter_cm"] > 0]
+def test_trees_are_individuals_with_ids_several_per_species():
+    raw = _read("tree_biomass.csv")
+    assert raw["tree_id"].is_unique
+    trees = _trees()
     assert trees["species"].nunique() >= 30
     assert trees["genus"].nunique() >= 5
-    assert trees.groupby("species").size().min() >= 2
+    assert trees.groupby("species").size().min() >= 5
     medians = trees.groupby("genus")["diameter_cm"].median().sort_values()
     assert medians.iloc[-1] / medians.iloc[0] > 5
+
+
+def test_tree_within_and_between_species_exponents_differ_as_the_truth_says():
+    # Outside check with statsmodels OLS on the generated file: the within-species slope is the
+    # fixed-effects slope (one dummy per species), the between-species slope the OLS slope of
+    # species-mean log mass on species-mean log diameter (Mundlak 1978; van de Pol & Wright
+    # 2009); truth.json says 2 and 8/3.
+    truth = json.loads((DEMO / "truth.json").read_text())["tree_biomass"]
+    assert truth["rows_are"] == "individuals"
+    assert truth["within_exponent"] == 2.0
+    assert truth["exponent"] == pytest.approx(8 / 3)
+    trees = _trees()
+    dummies = pd.get_dummies(trees["species"], drop_first=True, dtype=float)
+    design = sm.add_constant(pd.concat([trees[["x"]], dummies], axis=1))
+    within = sm.OLS(trees["y"], design).fit()
+    assert within.params["x"] == pytest.approx(2.0, abs=3 * within.bse["x"])
+    means = trees.groupby("species")[["x", "y"]].mean()
+    between = sm.OLS(means["y"], sm.add_constant(means["x"])).fit()
+    # the species means carry the species deviation (SD 0.08) and the within-species part of
+    # their sampled trees, so a wider allowance than 3 SE: 0.1 (common practice, no source)
+    assert between.params["x"] == pytest.approx(8 / 3, abs=3 * between.bse["x"] + 0.1)
+    assert between.params["x"] - within.params["x"] > 0.5
+
+
+def test_running_speed_is_in_km_per_h_and_recovers_one_sixth_in_m_per_s():
+    # km/h → m/s divides by 3.6 (SI Brochure, 9th ed., 2019, Table 8); OLS with family dummies
+    # on species means (statsmodels) recovers the truth's exponent 1/6.
+    truth = json.loads((DEMO / "truth.json").read_text())["running_speed"]
+    assert truth["canonical_units"] == {"size": "kg", "trait": "m/s"}
+    assert truth["exponent"] == pytest.approx(1 / 6)
+    runs = _numeric(_read("running_speed.csv"), "mass_kg", "speed_kmh")
+    runs = runs[runs["mass_kg"] > 0]
+    assert runs["species"].nunique() == 48
+    runs["x"] = np.log(runs["mass_kg"])
+    runs["y"] = np.log(runs["speed_kmh"] / 3.6)
+    means = runs.groupby(["species", "family"], as_index=False)[["x", "y"]].mean()
+    dummies = pd.get_dummies(means["family"], drop_first=True, dtype=float)
+    fit = sm.OLS(means["y"], sm.add_constant(pd.concat([means[["x"]], dummies], axis=1))).fit()
+    assert fit.params["x"] == pytest.approx(1 / 6, abs=3 * fit.bse["x"])
+    # a species of 10 kg runs near exp(intercept) m/s: the file is in km/h, not m/s
+    at_reference = fit.params["const"] + fit.params["x"] * truth["log_reference_size"]
+    family_shifts = [v - truth["intercept"] for v in truth["taxon_intercept"]["family"].values()]
+    first_family = sorted(truth["taxon_intercept"]["family"])[0]
+    assert at_reference == pytest.approx(truth["taxon_intercept"]["family"][first_family],
+                                         abs=3 * fit.bse["const"] + 0.05)
+    assert np.mean(family_shifts) == pytest.approx(0.0, abs=1e-12)
 
 
 def test_cell_law_breaks_at_the_stated_volume():
@@ -176,7 +215,7 @@ def test_cell_law_breaks_at_the_stated_volume():
 
 def test_truth_lists_the_blemishes_with_their_lines():
     truth = json.loads((DEMO / "truth.json").read_text())
-    for dataset in ("island_metabolism", "tree_biomass", "cell_scaling"):
+    for dataset in ("island_metabolism", "tree_biomass", "cell_scaling", "running_speed"):
         blemishes = truth[dataset]["blemishes"]
         assert len(blemishes) >= 2
         for blemish in blemishes:

@@ -578,7 +578,8 @@ def demo_results(tmp_path_factory):
     return work, config, truth, summaries
 
 
-@pytest.mark.parametrize("dataset", ["island_metabolism", "tree_biomass", "cell_scaling"])
+@pytest.mark.parametrize("dataset", ["island_metabolism", "tree_biomass", "cell_scaling",
+                                     "running_speed"])
 def test_ledger_accounts_for_every_input_row_of_the_demo(demo_results, dataset):
     work, config, truth, _ = demo_results
     ledger = pd.read_csv(ledger_path(work / "results", dataset), keep_default_na=False)
@@ -590,7 +591,9 @@ def test_ledger_accounts_for_every_input_row_of_the_demo(demo_results, dataset):
         assert sorted(rows["line"]) == data_lines
     _assert_ledger_adds_up(ledger, prepared, len(ledger))
     assert prepared["counts"]["kept"] == prepared["counts"]["species"]
-    assert prepared["counts"]["species"] == truth[dataset]["n_species"]
+    # with rows_are: individuals every usable line is a row (truth: n_individuals)
+    assert prepared["counts"]["species"] == truth[dataset].get("n_individuals",
+                                                               truth[dataset]["n_species"])
     merged = ledger[ledger["fate"] == "merged"]
     assert (merged["merged_into"] == merged["species"]).all()
     # Every blemish of truth.json got the fate it was made for.
@@ -608,7 +611,10 @@ def test_demo_clean_tables_follow_the_contract(demo_results):
     work, config, _, summaries = demo_results
     for dataset, ds in config["datasets"].items():
         clean = read_clean(work / "results", dataset)
-        levels = ds["sources"][0]["columns"]["levels"]
+        prepared = read_prepared(work / "results", dataset)
+        levels = prepared["levels"]  # with individuals, the species level comes last
+        assert levels[:len(ds["sources"][0]["columns"]["levels"])] == ds["sources"][0][
+            "columns"]["levels"]
         covariates = [f"cov_{c}" for c in ds["sources"][0]["columns"]["covariates"]]
         assert list(clean.columns) == [
             "species", *levels, "log_size", "log_trait", "n_rows", "within_sd_log_size",
@@ -616,9 +622,11 @@ def test_demo_clean_tables_follow_the_contract(demo_results):
             "sd_source_trait", *covariates, "source", "flag_outlier", "flag_singleton_taxon",
         ]
         assert clean["species"].is_unique
-        assert np.isfinite(clean[["log_size", "log_trait", "sd_log_size"]]).all().all()
-        assert set(clean["sd_source_size"]) <= {"replicates", "pooled"}
-        prepared = read_prepared(work / "results", dataset)
+        # individuals have no replicates to take an SD from
+        allowed = {"none"} if ds["rows_are"] == "individuals" else {"replicates", "pooled"}
+        assert set(clean["sd_source_size"]) <= allowed
+        finite = ["log_size", "log_trait"] + (["sd_log_size"] if "none" not in allowed else [])
+        assert np.isfinite(clean[finite]).all().all()
         assert prepared["canonical_units"]["size"] == ds["size"]["unit"]
         assert len(prepared["sources"][0]["sha256"]) == 64
         assert dataset in summaries[dataset]
@@ -652,6 +660,22 @@ def test_demo_cell_rates_are_converted_from_amol_per_minute(demo_results):
     # 1 amol/min = 0.06 fmol/h (1e-18 mol × 60 per hour); the mean of logs of the replicates.
     expected = np.mean(np.log(first["uptake_amol_min"].astype(float) * 0.06))
     assert clean.loc["AST-001", "log_trait"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_demo_running_speed_is_converted_from_km_per_h_to_m_per_s(demo_results):
+    work, config, _, _ = demo_results
+    raw = pd.read_csv(config["datasets"]["running_speed"]["sources"][0]["file"],
+                      keep_default_na=False)
+    clean = read_clean(work / "results", "running_speed").set_index("species")
+    name = raw["species"].iloc[0]
+    trials = raw[raw["species"] == name]
+    # 1 km/h = 1/3.6 m/s (SI Brochure, 9th ed., 2019, Table 8); the mean of logs of the trials
+    expected = np.mean(np.log(trials["speed_kmh"].astype(float) / 3.6))
+    assert clean.loc[name, "log_trait"] == pytest.approx(expected, rel=1e-12)
+    prepared = read_prepared(work / "results", "running_speed")
+    factors = {c["from"]: c["factor"] for c in prepared["conversions"]
+               if c["column"] == "speed_kmh"}
+    assert factors == {"km/h": pytest.approx(1 / 3.6, rel=1e-12)}
 
 
 def test_unclosed_quote_is_named_in_the_reason(tmp_path):

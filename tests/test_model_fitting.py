@@ -160,3 +160,29 @@ def test_missing_prepared_table_is_a_user_error(tmp_path: Path) -> None:
     config = _stage_config(tmp_path)
     with pytest.raises(UserError, match="allolaw prepare"):
         fit_dataset_model(config, "toy", "pooled")
+
+
+@pytest.mark.parametrize(("rows_are", "warned"), [("individuals", True),
+                                                  ("species_values", False)])
+def test_fit_of_individuals_without_a_species_term_records_the_warning(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture,
+        rows_are: str, warned: bool) -> None:
+    # The prepared set says its rows are individuals (family stands in for the species level
+    # here); the pooled spec has no term there, so the fit logs the warning and keeps it in
+    # the posterior's attributes, where the check stage reads it.
+    config = _stage_config(tmp_path)
+    results = Path(config["results_dir"])
+    _write_prepared(results, "toy")
+    prepared_file = results / "toy" / "prepared.json"
+    prepared = json.loads(prepared_file.read_text(encoding="utf-8"))
+    prepared["rows_are"] = rows_are
+    prepared_file.write_text(json.dumps(prepared), encoding="utf-8")
+    write_manifest(results, "toy", inputs=[], config_sha256=None)
+    monkeypatch.setattr(fitting, "fit_model", lambda model, **kwargs: az.from_dict(
+        posterior={"exponent": np.zeros((1, 5))}))
+    idata = fit_dataset_model(config, "toy", "pooled")
+    recorded = json.loads(idata.attrs["warnings"])
+    assert bool(recorded) is warned
+    if warned:
+        assert "'family'" in recorded[0]
+        assert any("rows_are: individuals" in r.getMessage() for r in caplog.records)

@@ -86,7 +86,7 @@ def test_breakpoint_model_recovers_break_location_and_both_exponents():
     ("dataset", "model", "parameters"),
     [
         ("cell_scaling", "breakpoint", ["break_log_size", "exponent_above"]),
-        ("tree_biomass", "taxa_errors_curved", ["exponent", "curvature"]),
+        ("tree_biomass", "individuals_within", ["exponent", "within_exponent"]),
     ],
 )
 def test_demo_truth_is_recovered(tmp_path, dataset, model, parameters):
@@ -102,7 +102,7 @@ def test_demo_truth_is_recovered(tmp_path, dataset, model, parameters):
     prepare_dataset(config, dataset)
     data = read_clean(tmp_path, dataset)
     prepared = read_prepared(tmp_path, dataset)
-    levels = list(config["datasets"][dataset]["sources"][0]["columns"].get("levels", []))
+    levels = list(prepared["levels"])  # with individuals the species level comes last
     log_ref = float(prepared["log_reference_size"])
     idata = quick_sample(build_model(data, load_spec(MODELS, model), levels=levels,
                                      log_reference_size=log_ref),

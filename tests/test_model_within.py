@@ -9,7 +9,7 @@ import pytest
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
 from allolaw.model.spec import parse_spec
-from allolaw.model.within import split_log_size, within_term
+from allolaw.model.within import species_grouping_warning, split_log_size, within_term
 from allolaw.testing import as_clean_table, quick_sample
 from allolaw.testing.individuals import simulate_individuals
 
@@ -145,3 +145,25 @@ def test_within_exponents_varying_by_species_are_partially_pooled_and_recovered(
     low, high = np.quantile(idata.posterior["within_exponent_sd__species_level"].values,
                             [0.05, 0.95])
     assert low < 0.3 < high
+
+
+@pytest.mark.parametrize("taxa", [{"levels": "none"}, {"levels": ["genus"], "vary": ["intercept"]}])
+def test_individuals_without_a_species_term_get_a_warning_naming_model_and_level(taxa):
+    spec = parse_spec({"taxa": taxa}, name="plain")
+    message = species_grouping_warning(spec, levels=["genus", "species_level"],
+                                       rows_are="individuals")
+    assert message is not None
+    assert "model plain" in message
+    assert "'species_level'" in message
+    assert "rows_are: individuals" in message
+
+
+def test_no_species_grouping_warning_with_a_species_term_or_species_values():
+    with_species = parse_spec({"taxa": {"levels": "all", "vary": ["intercept"]}}, name="t")
+    assert species_grouping_warning(with_species, levels=["genus", "species_level"],
+                                    rows_are="individuals") is None
+    inner = parse_spec({"taxa": {"levels": "innermost", "vary": ["intercept"]}}, name="i")
+    assert species_grouping_warning(inner, levels=["genus", "species_level"],
+                                    rows_are="individuals") is None
+    pooled = parse_spec({"taxa": {"levels": "none"}}, name="p")
+    assert species_grouping_warning(pooled, levels=["genus"], rows_are="species_values") is None

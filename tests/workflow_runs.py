@@ -43,7 +43,8 @@ REPO = Path(__file__).resolve().parents[1]
 
 # Two demo datasets x two models (dry-run and kill tests): small enough for a test, big enough to
 # have one job of every rule per dataset and several jobs queued at once.
-SMALL_BATCH = {"cell_scaling": ["pooled", "taxa"], "tree_biomass": ["pooled", "taxa"]}
+SMALL_BATCH = {"cell_scaling": ["pooled", "taxa"],
+               "tree_biomass": ["individuals_together", "individuals_within"]}
 # One dataset x two models (resume, reproducibility and SLURM tests, which run it 2-3 times).
 ONE_DATASET = {"cell_scaling": ["pooled", "taxa"]}
 

@@ -1,4 +1,4 @@
-"""The invented demo data: three seeded datasets with known truth and a few blemishes.
+"""The invented demo data: four seeded datasets with known truth and a few blemishes.
 
 Nothing here is real: taxon and species names are made up, and so are the numbers. The files
 match the ``datasets:`` block of ``config/config.yaml`` (names, columns, units); the generating
@@ -11,11 +11,14 @@ compare a fit with the truth.
   mass, a mild body-temperature effect; 30 species measured by both teams; residuals that
   evolve along an invented tree of the species (``island_metabolism_tree.nwk``, from
   ``demo_tree.py``).
-- ``tree_biomass``: above-ground mass (kg) against trunk diameter (cm), 36 species in 6 genera,
-  one curved law (local exponent 8/3 at 20 cm, curvature −0.15 per (ln cm)²); the genera
-  occupy different diameter ranges, so the curve can look like genus differences.
+- ``tree_biomass``: above-ground mass (kg) against trunk diameter (cm) of individual trees
+  (a tree id column), 36 species in 6 genera; between-species exponent 8/3 at 20 cm,
+  within-species exponent 2 (:mod:`allolaw.demo_individuals`).
 - ``cell_scaling``: uptake rate per cell against cell volume, 66 strains in 3 groups, exponent
   1 below a break at 100 µm³ and 2/3 above it.
+- ``running_speed``: maximum running speed (file in km/h, canonical m/s) against body mass of
+  48 invented mammal species in 6 families, exponent 1/6 at 10 kg
+  (:mod:`allolaw.demo_individuals`).
 
 Each file carries a few realistic blemishes (a missing value, a non-positive value, an exact
 duplicate line, a decimal slip, a missing taxon); ``truth.json`` lists them under
@@ -32,7 +35,12 @@ from typing import Any
 
 import numpy as np
 
-from allolaw.demo_tree import island_tree
+  mass, a mild body-temperature effect; 30 species measured by both teams; residuals that
+  evolve along an invented tree of the species (``island_metabolism_tree.nwk``, from
+  ``demo_tree.py``).
+- ``tree_biomass``: above-ground mass (kg) against trunk diameter (cm) of individual trees
+  (a tree id column), 36 species in 6 genera; between-species exponent 8/3 at 20 cm,
+  within-species exponent 2 (:mod:`allolaw.demo_individuals`).
 from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 from allolaw.io import atomic_path, write_text
 
@@ -49,7 +57,7 @@ _EPITHETS = [
 
 
 def write_demo_data(out: str | Path, *, seed: int | None = None) -> list[Path]:
-    """Write the three invented demo datasets and ``truth.json`` into ``out``.
+    """Write the four invented demo datasets and ``truth.json`` into ``out``.
 
     Parameters
     ----------
@@ -66,7 +74,9 @@ def write_demo_data(out: str | Path, *, seed: int | None = None) -> list[Path]:
     """
     out = Path(out)
     seed = DEFAULT_SEED if seed is None else int(seed)
-    streams = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(3)]
+    # child k of a SeedSequence does not depend on how many are spawned: a fourth dataset
+    # leaves the first three streams as they were
+    streams = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(4)]
     paths: list[Path] = []
     truth: dict[str, Any] = {
         "generator": {
@@ -77,8 +87,9 @@ def write_demo_data(out: str | Path, *, seed: int | None = None) -> list[Path]:
     }
     for name, make, rng in (
         ("island_metabolism", _island_metabolism, streams[0]),
-        ("tree_biomass", _tree_biomass, streams[1]),
+        ("tree_biomass", tree_individuals, streams[1]),
         ("cell_scaling", _cell_scaling, streams[2]),
+        ("running_speed", running_speed, streams[3]),
     ):
         files, params = make(rng)
         for filename, content in files.items():
@@ -274,72 +285,7 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
 
 
 # ----------------------------------------------------------------------------------------------
-# (b) tree biomass
-
-
-def _tree_biomass(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, Any]]:
-    genera = ["Arboria", "Brachyxylon", "Cortexia", "Dendrella", "Escalonix", "Fagopsis"]
-    exponent = 8.0 / 3.0
-    curvature = -0.15
-    reference = 20.0  # cm
-    log_ref = math.log(reference)
-    intercept = math.log(250.0)  # kg at 20 cm
-    sigma = 0.08
-    # Rows of a species are repeated measurements (several plots) of the species' typical tree:
-    # the spread within a species is measurement error, as the species-mean intake assumes.
-    size_error_sd = 0.05
-    trait_error_sd = 0.10
-    centres = np.linspace(math.log(5.0), math.log(70.0), len(genera))
-    genus_shift = _centred(rng.normal(0.0, 0.05, len(genera)))
-    rows: list[list[str]] = []
-    for k, genus in enumerate(genera):
-        epithets = list(rng.permutation(_EPITHETS))
-        for _ in range(6):
-            name = f"{genus} {epithets.pop()}"
-            centre = centres[k] + rng.normal(0.0, 0.25)
-            dev = rng.normal(0.0, sigma)
-            dx = centre - log_ref
-            true_log_mass = intercept + genus_shift[k] + exponent * dx + curvature * dx**2 + dev
-            for _ in range(int(rng.integers(3, 9))):
-                x = centre + rng.normal(0.0, size_error_sd)
-                log_mass = true_log_mass + rng.normal(0.0, trait_error_sd)
-                rows.append([name, genus, _fmt(math.exp(x), 3), _fmt(math.exp(log_mass))])
-    file = "tree_biomass.csv"
-    blemishes = []
-    rows.insert(30, [rows[29][0], rows[29][1], rows[29][2], "n/a"])
-    blemishes.append(_blemish(file, 30 + 2, "mass_kg", "mass written as 'n/a'", "dropped"))
-    rows.insert(90, [rows[89][0], rows[89][1], "-" + rows[89][2], rows[89][3]])
-    blemishes.append(_blemish(file, 90 + 2, "diameter_cm", "negative diameter", "dropped"))
-    params = {
-        "canonical_units": {"size": "cm", "trait": "kg"},
-        "reference_size": reference,
-        "log_reference_size": log_ref,
-        "exponent": exponent,
-        "intercept": intercept,
-        "curvature": curvature,
-        "break_log_size": None,
-        "exponent_above": None,
-        "sigma": sigma,
-        "size_error_sd": size_error_sd,
-        "trait_error_sd": trait_error_sd,
-        "levels": ["genus"],
-        "taxon_exponent": {"genus": dict.fromkeys(genera, exponent)},
-        "taxon_intercept": {"genus": {g: intercept + float(genus_shift[k])
-                                      for k, g in enumerate(genera)}},
-        "taxon_curvature": {"genus": dict.fromkeys(genera, curvature)},
-        "exponent_sd": {"genus": 0.0},
-        "n_species": 6 * len(genera),
-        "rows": {file: len(rows)},
-        "blemishes": blemishes,
-        "notes": (
-            "ln kg = intercept + genus shift + exponent·d + curvature·d² + species dev "
-            "N(0, sigma), d = ln cm − ln 20 of the species' typical tree; each row is one "
-            "measurement of it: ln diameter + N(0, size_error_sd), ln mass + N(0, trait_error_sd). "
-            "Genera sit at increasing diameter ranges, so local slopes differ by genus only "
-            "through the curvature."
-        ),
-    }
-    return {file: (["species", "genus", "diameter_cm", "mass_kg"], rows, ",")}, params
+# (b) tree biomass: individual trees, in allolaw.demo_individuals
 
 
 # ----------------------------------------------------------------------------------------------

@@ -14,8 +14,11 @@
   prior probability), the LOO difference against the matched model without the break
   (:func:`allolaw.model.spec.models_to_fit` adds it to the fits), and the verdict;
 * ``headline.json`` — stacking weights, the exponent averaged over the fitted models beside
-  the primary model's and whether they disagree, and the power-scaling sensitivity of each
-  model's answers (its ranges and "changes" flags are also columns of ``hypotheses.csv``).
+  the primary model's and whether they disagree, the power-scaling sensitivity of each
+  model's answers (its ranges and "changes" flags are also columns of ``hypotheses.csv``),
+  and for each model with a within/between split the two exponents and their difference
+  (:mod:`allolaw.answers.within`; the within-species exponent's named values are rows of
+  ``hypotheses.csv`` with ``parameter`` ``within_exponent``).
 
 Each JSON says ``"applicable": false`` with a reason when the dataset has nothing to audit.
 
@@ -48,6 +51,7 @@ from allolaw.answers.verdicts import (
     headline_block,
     sensitivity_block,
 )
+from allolaw.answers.within import within_between_block, within_hypotheses
 from allolaw.checks.reading import read_groups
 from allolaw.config import dataset_config, hypotheses_config
 from allolaw.intake.manifest import dataset_config_sha256, read_prepared
@@ -115,6 +119,11 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
         sensitivity[model] = _sensitivity(idata, specs[model], settings)
         _add_sensitivity_columns(part, sensitivity[model])
         parts.append(part)
+        within = within_hypotheses(idata, specs[model], settings)  # empty without a split
+        if not within.empty:
+            within["model"] = model
+            within["check_verdict"] = verdicts[model]
+            parts.append(within)
     hyp = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame()
     if not hyp.empty:
         hyp["dataset"] = dataset
@@ -128,6 +137,7 @@ def compare_dataset(config: dict[str, Any], dataset: str) -> None:
     primary = ds.get("primary_model") or ds["models"][-1]
     head = headline_block(fits, hyp, primary=primary, weights=weights)
     head["sensitivity"] = sensitivity
+    head["within_between"] = within_between_block(fits, hyp, verdicts)
     write_json(paths.headline_path(results, dataset), _clean(head))
 
 

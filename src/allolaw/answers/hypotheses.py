@@ -57,7 +57,7 @@ from allolaw.answers.draws import flat, scalar
 from allolaw.answers.local_exponent import local_taxon_exponent
 from allolaw.answers.node_tree import Prior, Tree, node_prior, spec_dict, tree_nodes
 
-__all__ = ["COLUMNS", "compare_hypotheses"]
+__all__ = ["COLUMNS", "compare_hypotheses", "draws_hypotheses"]
 
 #: Columns of ``hypotheses.csv`` (DEVELOPERS.md), in order; ``dataset`` is added by the caller.
 COLUMNS = [
@@ -121,12 +121,7 @@ def compare_hypotheses(
     """
     spec_d = spec_dict(spec)
     model_name = str(spec_d.get("name", idata.attrs.get("model", "")))
-    named = [(str(h["name"]), float(h["value"]), float(h.get("weight", 1.0)))
-             for h in settings.get("exponents", [])]
-    other_weight = float(settings.get("other_weight", 1.0))
-    delta = float(settings.get("interval_halfwidth", 0.03))
-    bounds = list(settings.get("bounds", []))
-    factors = [float(f) for f in settings.get("prior_scale_factors", [0.5, 2.0])]
+    named, other_weight, delta, bounds, factors = _read_settings(settings)
 
     posterior = idata.posterior
     if "exponent" not in posterior:
@@ -136,14 +131,7 @@ def compare_hypotheses(
     m0, s0 = float(prior["mean"]), float(prior["sd"])
     sd_scale = float(spec_d["priors"].get("exponent_sd", {}).get("sd", 0.25))
 
-    weights: dict[float, np.ndarray | None] = {1.0: None}
-    weight_k: dict[float, float] = {}
-    b_pop = flat(posterior["exponent"])
-    for f in factors:
-        lw = stats.norm.logpdf(b_pop, m0, f * s0) - stats.norm.logpdf(b_pop, m0, s0)
-        w, k = _smoothed_weights(lw)
-        weights[f] = w
-        weight_k[f] = k
+    weights, weight_k = _prior_weights(flat(posterior["exponent"]), m0, s0, factors)
 
     note = _base_note(spec_d, idata)
     rows: list[dict[str, Any]] = []
@@ -169,6 +157,54 @@ def compare_hypotheses(
         if column not in table:
             table[column] = np.nan
     return table[COLUMNS + [c for c in table.columns if c not in COLUMNS]]
+
+
+def draws_hypotheses(draws: np.ndarray, prior_mean: float, prior_sd: float,
+                     settings: dict[str, Any]) -> list[dict[str, Any]]:
+    """Rows of the named values for one more exponent with a normal prior, from its draws.
+
+    For an exponent without a normal full conditional in :mod:`allolaw.answers.node_tree`
+    (the within-species exponent): the posterior density at each named value is the
+    parametric fit to the draws (:func:`allolaw.answers.density.fit_parametric`), the prior
+    density the normal prior's, and the prior sensitivity reweights the draws by the prior
+    ratio as in :func:`compare_hypotheses`. Each row has the keys of :data:`COLUMNS` from
+    ``hypothesis`` to ``method`` (``note`` holds the sensitivity statement).
+    """
+    named, other_weight, delta, bounds, factors = _read_settings(settings)
+    draws = np.asarray(draws, dtype=float).reshape(-1)
+    weights, weight_k = _prior_weights(draws, prior_mean, prior_sd, factors)
+    est = DensityEstimate(draws=draws, method="")
+    family = "Student-t" if est.parametric().dist.name == "t" else "skew-normal"
+    est.method = f"Savage–Dickey, {family} fitted to draws"
+    rows = _hypothesis_block(est, Prior(prior_mean, prior_sd), named, other_weight, delta,
+                             bounds, weights, weight_k)
+    for row in rows:
+        row["method"] = est.method
+        row["note"] = row.pop("_note", "")
+    return rows
+
+
+def _read_settings(settings: dict[str, Any]) -> tuple[list[tuple[str, float, float]], float,
+                                                      float, list[dict[str, Any]],
+                                                      list[float]]:
+    named = [(str(h["name"]), float(h["value"]), float(h.get("weight", 1.0)))
+             for h in settings.get("exponents", [])]
+    other_weight = float(settings.get("other_weight", 1.0))
+    delta = float(settings.get("interval_halfwidth", 0.03))
+    bounds = list(settings.get("bounds", []))
+    factors = [float(f) for f in settings.get("prior_scale_factors", [0.5, 2.0])]
+    return named, other_weight, delta, bounds, factors
+
+
+def _prior_weights(draws: np.ndarray, m0: float, s0: float, factors: list[float]
+                   ) -> tuple[dict[float, np.ndarray | None], dict[float, float]]:
+    # importance weights of the draws for each scaled prior SD, with their Pareto k
+    weights: dict[float, np.ndarray | None] = {1.0: None}
+    weight_k: dict[float, float] = {}
+    for f in factors:
+        lw = stats.norm.logpdf(draws, m0, f * s0) - stats.norm.logpdf(draws, m0, s0)
+        weights[f], weight_k[f] = _smoothed_weights(lw)
+    return weights, weight_k
 
 
 # --- one block of rows ------------------------------------------------------------------
@@ -293,8 +329,10 @@ def _base_note(spec: dict[str, Any], idata: az.InferenceData) -> str:
 
 
 def _smoothed_weights(log_ratio: np.ndarray) -> tuple[np.ndarray, float]:
-    with warnings.catch_warnings():
-        # ArviZ warns on high k; k is reported in the note instead.
+    with warnings.catch_warnings(), np.errstate(over="ignore"):
+        # ArviZ warns on high k; k is reported in the note instead. Its Pareto fit overflows
+        # in exp on nearly constant log ratios (a prior far wider than the posterior); the
+        # weights and k stay finite (k < 0 then), so that overflow is not shown either.
         warnings.simplefilter("ignore", UserWarning)
         lw, k = az.psislw(log_ratio - log_ratio.max())
     w = np.exp(np.asarray(lw) - np.max(lw))

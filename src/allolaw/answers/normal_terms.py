@@ -7,7 +7,7 @@ answers Rao–Blackwellise over it (:mod:`allolaw.answers.node_tree` for named e
 the observed log traits, the (true) log sizes, each species' intercept/exponent/curvature
 terms, the covariate part of the mean and the residual variance. They are read here once, with
 one set of guards: when the fit is not of that kind (Student-t residuals, residuals correlated
-along a tree, no observed data kept) :func:`law_pieces` returns ``None`` and the callers fall
+along a tree, a within/between split, no observed data kept) :func:`law_pieces` returns ``None`` and the callers fall
 back to a density fitted to the draws. Every caller also checks its conditional against the
 draws (:func:`self_check`), so a model feature these pieces do not know is caught there.
 
@@ -111,6 +111,8 @@ def law_pieces(idata: az.InferenceData, spec: dict[str, Any]) -> LawPieces | Non
     obs = getattr(idata, "observed_data", None)
     if const is None or obs is None or "trait" not in obs or "sigma" not in post:
         return None
+    if "within_log_size" in const:
+        return None  # a within/between split: the exponent acts on group means, not sizes
     y = np.asarray(obs["trait"].values, dtype=float).reshape(-1)
     if "true_log_size" in post:
         x = flat_matrix(post["true_log_size"], "species")

@@ -12,11 +12,20 @@ between-subject effects using mixed models. Animal Behaviour 77, 753-758.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
-__all__ = ["compare_within_between"]
+from allolaw.answers.draws import flat
+from allolaw.answers.hypotheses import COLUMNS, draws_hypotheses
+from allolaw.answers.node_tree import spec_dict
+
+__all__ = ["compare_within_between", "within_between_block", "within_hypotheses"]
+
+#: The ``parameter`` of the within-species rows of ``hypotheses.csv``.
+WITHIN = "within_exponent"
 
 
 def compare_within_between(idata: Any, *, interval: float = 0.9) -> dict[str, Any] | None:
@@ -54,3 +63,63 @@ def compare_within_between(idata: Any, *, interval: float = 0.9) -> dict[str, An
         "difference": summary(difference),
         "p_within_steeper": float(np.mean(difference > 0)),
     }
+
+
+def within_hypotheses(idata: Any, spec: Any, settings: dict[str, Any]) -> pd.DataFrame:
+    """Rows of ``hypotheses.csv`` for the within-species exponent (empty without a split).
+
+    The same named values, bounds and prior weights as the dataset's exponent
+    (:func:`allolaw.answers.hypotheses.draws_hypotheses`), against the spec's normal prior
+    of ``within_exponent``; ``parameter`` is ``within_exponent``, ``level`` and ``taxon`` empty.
+    """
+    if WITHIN not in idata.posterior:
+        return pd.DataFrame(columns=COLUMNS)
+    spec_d = spec_dict(spec)
+    prior = spec_d["priors"][WITHIN]
+    rows = draws_hypotheses(flat(idata.posterior[WITHIN]), float(prior["mean"]),
+                            float(prior["sd"]), settings)
+    table = pd.DataFrame(rows)
+    table["model"] = str(spec_d.get("name", idata.attrs.get("model", "")))
+    table["parameter"] = WITHIN
+    table["level"] = ""
+    table["taxon"] = ""
+    table["dataset"] = str(idata.attrs.get("dataset", ""))
+    for column in COLUMNS:
+        if column not in table:
+            table[column] = np.nan
+    return table[COLUMNS + [c for c in table.columns if c not in COLUMNS]]
+
+
+def within_between_block(fits: Mapping[str, Any], hyp: pd.DataFrame,
+                         verdicts: Mapping[str, str], *, interval: float = 0.9
+                         ) -> dict[str, Any]:
+    """The ``within_between`` block of ``headline.json``: one entry per model with a split.
+
+    Each entry is :func:`compare_within_between` plus ``within_probs`` and
+    ``between_probs`` (posterior probability of each named value and "another value", from
+    ``hyp``, the rows of ``hypotheses.csv``) and the model's ``check_verdict``.
+    ``{"applicable": false, "reason": ...}`` when no fit has a split.
+    """
+    models: dict[str, Any] = {}
+    for model, idata in fits.items():
+        summary = compare_within_between(idata, interval=interval)
+        if summary is None:
+            continue
+        summary["within_probs"] = _named_probs(hyp, model, WITHIN)
+        summary["between_probs"] = _named_probs(hyp, model, "exponent")
+        summary["check_verdict"] = verdicts.get(model, "not checked")
+        models[model] = summary
+    if not models:
+        return {"applicable": False,
+                "reason": "no model of this dataset separates within- and between-species "
+                          "exponents (within_species: together)"}
+    return {"applicable": True, "models": models}
+
+
+def _named_probs(hyp: pd.DataFrame, model: str, parameter: str) -> dict[str, float]:
+    if hyp is None or hyp.empty:
+        return {}
+    taxon = hyp["taxon"].fillna("").astype(str)
+    rows = hyp[(hyp["model"] == model) & (hyp["parameter"] == parameter) & (taxon == "")
+               & hyp["kind"].isin(["point", "other"])]
+    return {str(r.hypothesis): float(r.posterior_prob) for r in rows.itertuples()}

@@ -86,6 +86,9 @@ def check_dataset_model(
             f"The first fit had {before['n_divergent']} divergent transitions; it was refitted "
             f"once with target acceptance {target:g}, leaving {result.n_divergent}."
         ))
+    # warnings of the fit stage (model/within.py: individuals without a species term) come
+    # first among the findings, so the page shows them with the checks
+    findings[:0] = json.loads(str(idata.attrs.get("warnings") or "[]"))
     groups = innermost_groups(config, dataset, idata)
     ppc = predictive_checks(idata, groups=groups)
     findings.extend(ppc_findings(ppc))

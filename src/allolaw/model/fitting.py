@@ -77,6 +77,7 @@ def fit_dataset_model(
     """
     from allolaw.model.builder import build_model
     from allolaw.model.spec import load_spec
+    from allolaw.model.within import species_grouping_warning
 
     wall_start = time.perf_counter()
     results = Path(config["results_dir"])
@@ -95,6 +96,10 @@ def fit_dataset_model(
         sampler["target_acceptance"] = float(target_acceptance)
     seed = derive_seed(int(sampler["seed"]), dataset, model_name)
 
+    warnings = [w for w in [species_grouping_warning(
+        spec, levels=levels, rows_are=str(prepared.get("rows_are", "species_values")))] if w]
+    for warning in warnings:  # also in the fit's attributes, for the check findings
+        log.warning("%s/%s: %s", dataset, model_name, warning)
     log.info("fit %s/%s: building the model (%d species)", dataset, model_name, len(data))
     phylogeny = _phylogeny(results, dataset, prepared, data) if (
         spec.shared_ancestry != "none") else None
@@ -127,6 +132,7 @@ def fit_dataset_model(
             "tree_sha256": (prepared.get("tree") or {}).get("sha256", "") if phylogeny else "",
             "refit": json.dumps(target_acceptance is not None),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
+            "warnings": json.dumps(warnings),
         }
     )
     out = posterior_path(results, dataset, model_name)

@@ -31,9 +31,10 @@ import numpy as np
 import pandas as pd
 
 from allolaw.errors import UserError
+from allolaw.model.inputs import select_levels
 from allolaw.model.spec import ModelSpec
 
-__all__ = ["SizeSplit", "split_log_size", "within_term"]
+__all__ = ["SizeSplit", "species_grouping_warning", "split_log_size", "within_term"]
 
 
 @dataclass(frozen=True)
@@ -87,6 +88,30 @@ def split_log_size(data: pd.DataFrame, spec: ModelSpec, *, levels: list[str]) ->
     codes, uniques = pd.factorize(data[level].astype(str).to_numpy())
     return SizeSplit(level, group_mean, log_size - group_mean, [str(u) for u in uniques],
                      codes.astype(int))
+
+
+def species_grouping_warning(spec: ModelSpec, *, levels: list[str], rows_are: str
+                             ) -> str | None:
+    """A warning when rows are individuals but the spec has no term at the species level.
+
+    With ``rows_are: individuals`` the species is the innermost of ``levels``; a spec without
+    taxon terms there (``pooled``, or ``taxa.levels`` that leave the species out) treats the
+    individuals of a species as independent observations, so the species grouping is
+    ignored. Returns the sentence, or ``None`` when there is nothing to warn about.
+    """
+    if rows_are != "individuals" or not levels:
+        return None
+    species = levels[-1]
+    if species in select_levels(spec, levels):
+        return None
+    return (
+        f"model {spec.name}: the rows of this dataset are individuals (rows_are: individuals) "
+        f"but the model has no taxon term at the species level '{species}', so it treats "
+        "every individual as an independent observation and ignores which species it "
+        "belongs to: the exponent mixes within- and between-species scaling and its interval "
+        "is too narrow when individuals of a species resemble each other. Use a spec with "
+        "`taxa: {levels: all}` (or one that lists the species level)."
+    )
 
 
 def within_term(model: Any, split: SizeSplit, spec: ModelSpec) -> Any:

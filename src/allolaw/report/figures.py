@@ -34,6 +34,7 @@ from allolaw.report import charts
 from allolaw.report import forest as forest_notes
 from allolaw.report.formatting import fmt, truthy, unit_text
 from allolaw.report.svg import Band, Series
+from allolaw.report.within import within_lines
 
 
 def ppc_figures(ppc: dict[str, Any], trait_unit: str) -> dict[str, Markup]:
@@ -91,12 +92,21 @@ def build_figures(
     else:
         bands, refs = _law_lines(idata, grid, named, taxa, colours, colour_level, log_x,
                                  figs["notes"])
+        within = within_lines(idata, clean, levels, colours, taxa)  # report/within.py
+        if within:
+            bands[0].label = "between-species law (90% band)"
+            bands += within
+            figs["notes"].append(
+                "Short coloured lines: within each species, the within-species exponent "
+                "(posterior median) through the species' mean log size and mean log trait; the "
+                "black line is the between-species law, the law of species means.")
     figs["scatter"] = _svg(charts.scatter_law_svg(
         series, bands, x_label=units["x_axis"], y_label=units["y_axis"], reference_lines=refs,
         title="", width=940, height=540,
     ))
     figs["scatter_notes"] = (
-        "Points: species means, coloured by " + (colour_level or "species")
+        "Points: " + ("individuals" if ds.get("rows_are") == "individuals" else "species means")
+        + ", coloured by " + (colour_level or "species")
         + " (Okabe–Ito palette); a dark ring marks a flagged outlier. Dashed grey lines: the "
         "named exponents, drawn through the population law at the reference size. Hover a "
         "point for the species name."

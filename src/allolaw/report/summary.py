@@ -27,6 +27,7 @@ from allolaw.report.sections import (
 )
 from allolaw.report.text import footer, headline, methods
 from allolaw.report.verdicts import average_section, breakpoint_section, curvature_section
+from allolaw.report.within import within_section
 
 __all__ = ["summarise_dataset"]
 
@@ -112,6 +113,7 @@ def summarise_dataset(
     context["curvature"] = curvature_section(curv)
     context["breakpoint"] = breakpoint_section(brk, comp)
     context["average"] = average_section(head, primary)
+    context["within"] = within_section(head, primary)  # None without a within/between split
     context["worst_verdict"] = worst_verdict(model_info)
     context["headline"] = headline(
         primary, fits.get(primary), hyp, context["curvature"], context["breakpoint"],
