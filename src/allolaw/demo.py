@@ -35,12 +35,8 @@ from typing import Any
 
 import numpy as np
 
-  mass, a mild body-temperature effect; 30 species measured by both teams; residuals that
-  evolve along an invented tree of the species (``island_metabolism_tree.nwk``, from
-  ``demo_tree.py``).
-- ``tree_biomass``: above-ground mass (kg) against trunk diameter (cm) of individual trees
-  (a tree id column), 36 species in 6 genera; between-species exponent 8/3 at 20 cm,
-  within-species exponent 2 (:mod:`allolaw.demo_individuals`).
+from allolaw.demo_individuals import running_speed, tree_individuals
+from allolaw.demo_tree import island_tree
 from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 from allolaw.io import atomic_path, write_text
 

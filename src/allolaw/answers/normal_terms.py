@@ -7,9 +7,10 @@ answers Rao–Blackwellise over it (:mod:`allolaw.answers.node_tree` for named e
 the observed log traits, the (true) log sizes, each species' intercept/exponent/curvature
 terms, the covariate part of the mean and the residual variance. They are read here once, with
 one set of guards: when the fit is not of that kind (Student-t residuals, residuals correlated
-along a tree, a within/between split, no observed data kept) :func:`law_pieces` returns ``None`` and the callers fall
-back to a density fitted to the draws. Every caller also checks its conditional against the
-draws (:func:`self_check`), so a model feature these pieces do not know is caught there.
+along a tree, a within/between split, no observed data kept) :func:`law_pieces` returns
+``None`` and the callers fall back to a density fitted to the draws. Every caller also checks
+its conditional against the draws (:func:`self_check`), so a model feature these pieces do
+not know is caught there.
 
 Written by hand because no library reads conditionals out of a PyMC trace.
 """
