@@ -13,7 +13,13 @@ import arviz as az
 import numpy as np
 import pytest
 
-from allolaw.model.extending import ESS_MIN, RHAT_MAX, convergence_numbers, extend_if_short
+from allolaw.model.extending import (
+    ESS_MIN,
+    RHAT_MAX,
+    AdaptedState,
+    convergence_numbers,
+    extend_if_short,
+)
 
 # --- the decision, on hand-built draws ------------------------------------------------------
 
@@ -55,6 +61,18 @@ def test_short_run_with_extension_off_says_so():
                                 backend="nutpie", target_acceptance=0.9)
     assert record["status"] == "off"
     assert "extension_draws is 0" in record["reason"]
+
+
+def test_short_run_with_a_low_rank_mass_matrix_part_is_not_extended():
+    idata = _iid(2, 50, seed=5, shift=3.0)
+    state = AdaptedState(value_vars=("mu",), inverse_mass=np.ones((2, 1)),
+                         step_size=np.array([0.5, 0.5]), low_rank_left_out=np.array([0, 2]))
+    out, record = extend_if_short(None, idata, state, extra_draws=50, seed=1,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert out is idata
+    assert record["status"] == "not available"
+    assert "low-rank part in 2 direction(s)" in record["reason"]
+    assert record["low_rank_directions_left_out"] == [0, 2]
 
 
 def test_convergence_numbers_leave_out_fixed_values_and_match_arviz():
@@ -146,3 +164,24 @@ def test_extended_draws_sample_the_closed_form_posterior():
     assert draws.std() == pytest.approx(s, rel=0.1)
     # the adapted step size was used as it was, not re-tuned
     np.testing.assert_allclose(added["step_size"].values[:, 0], state.step_size, rtol=1e-9)
+
+
+@pytest.mark.mcmc
+def test_extension_that_diverges_is_discarded_and_the_fit_kept():
+    import dataclasses
+
+    from allolaw.model.sampling import _sample
+
+    model = _model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=40, warmup=200,
+                                 target_acceptance=0.9, seed=8, threads=1, progress=False,
+                                 keep_state=True)
+    # a step size 200 times the adapted one: the continuation cannot follow the posterior
+    wild = dataclasses.replace(state, step_size=state.step_size * 200)
+    out, record = extend_if_short(model, idata, wild, extra_draws=40, seed=8,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert record["status"] == "discarded"
+    assert record["divergences"] > 0
+    assert out is idata
+    assert out.posterior.sizes["draw"] == 40
+    assert record["draws_per_chain_after"] == 40

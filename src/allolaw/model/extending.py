@@ -12,8 +12,9 @@ mass matrix are read from the sampler statistics of the last draw (``store_mass_
 nutpie 0.16 cannot start a run from a given mass matrix and position, so the extra draws come
 from PyMC's NUTS given that step size, that diagonal and the chain's last position. With
 nutpie's low-rank mass matrix, nutpie keeps only the diagonal scale and the eigenvalues of the
-low-rank part, not its directions; the extension then uses the diagonal alone and the record
-says in how many directions the low-rank correction was left out. ``pymc`` and ``numpyro``
+low-rank part, not its directions; when that part is used (any direction), the chains are not
+extended (the diagonal alone with the adapted step size diverged on every draw of a demo model)
+and the record says so. ``pymc`` and ``numpyro``
 (through ``pm.sample``) do not hand their adapted state back, so their chains are not
 extended: the record says so and the check reports the fit as it is.
 """
@@ -156,7 +157,8 @@ def extend_if_short(
     -------
     (arviz.InferenceData, dict)
         The fit, extended or as it was, and the record: ``status`` (``extended``,
-        ``not needed``, ``off`` or ``not available``), ``reason``, ``backend``,
+        ``not needed``, ``off``, ``not available`` or ``discarded``: the added draws
+        diverged more often than the first run, so they were dropped), ``reason``, ``backend``,
         ``extra_draws_per_chain``, ``draws_per_chain_before``/``_after``, ``before`` and
         ``after`` (worst R-hat, smallest bulk and tail ESS), ``thresholds`` and, when
         extended, ``step_size``, ``low_rank_directions_left_out``, ``divergences`` and
@@ -184,20 +186,41 @@ def extend_if_short(
         record["reason"] += (f"; backend {backend} does not hand back its adapted step size "
                              "and mass matrix, so the chains were not extended")
         return idata, record
+    if np.any(state.low_rank_left_out > 0):
+        # measured on the demo's tree_biomass/one_curve_errors (low-rank directions 3 and 2):
+        # the diagonal alone with nutpie's step size diverged on every added draw
+        record["status"] = "not available"
+        record["reason"] += ("; nutpie's adapted mass matrix has a low-rank part in "
+                             f"{int(state.low_rank_left_out.max())} direction(s) that nutpie "
+                             "does not hand back, and its diagonal alone does not suit the "
+                             "adapted step size, so the chains were not extended")
+        record["low_rank_directions_left_out"] = [int(k) for k in state.low_rank_left_out]
+        return idata, record
     chains = int(idata.posterior.sizes["chain"])
     seeds = [int(s) for s in np.random.SeedSequence(int(seed)).generate_state(3 + chains)[3:]]
     extended, added = extend_chains(model, idata, state, extra_draws=extra_draws, seeds=seeds,
                                     target_acceptance=target_acceptance, progress=progress)
     after = convergence_numbers(extended.posterior)
     accept = _first(added, ("mean_tree_accept", "acceptance_rate"))
+    n_div = int(np.asarray(added["diverging"].values).sum())
+    record.update({
+        "step_size": [round(float(s), 6) for s in state.step_size],
+        "low_rank_directions_left_out": [int(k) for k in state.low_rank_left_out],
+        "divergences": n_div,
+        "mean_acceptance": None if accept is None else round(float(accept.mean()), 4),
+        "seeds": seeds,
+    })
+    old_div = _count(idata.sample_stats, "diverging")
+    if n_div > old_div:  # the continuation met trouble the first run did not: not kept
+        record["status"] = "discarded"
+        record["reason"] += (f"; the added draws had {n_div} divergent transitions (the first "
+                             f"run {old_div}), so they were discarded and the fit kept as it "
+                             f"was (R-hat {after['rhat']}, bulk ESS {after['ess_bulk']} with "
+                             "them)")
+        return idata, record
     record.update({
         "status": "extended", "extra_draws_per_chain": int(extra_draws),
         "draws_per_chain_after": int(extended.posterior.sizes["draw"]), "after": after,
-        "step_size": [round(float(s), 6) for s in state.step_size],
-        "low_rank_directions_left_out": [int(k) for k in state.low_rank_left_out],
-        "divergences": int(np.asarray(added["diverging"].values).sum()),
-        "mean_acceptance": None if accept is None else round(float(accept.mean()), 4),
-        "seeds": seeds,
     })
     return extended, record
 
@@ -214,11 +237,10 @@ def extend_chains(
 ) -> tuple[az.InferenceData, Any]:
     """Run each chain ``extra_draws`` further from its last draw, no warm-up; append them.
 
-    Each chain gets PyMC's NUTS with a fixed diagonal mass matrix (the chain's
-    ``state.inverse_mass``) and the chain's adapted step size: with ``tune=0`` PyMC's step-size
-    adaptation returns its initial value, ``step_scale / n**0.25`` (pymc 5.28,
-    ``step_methods/hmc/base_hmc.py`` and ``step_sizes.py``), so ``step_scale`` is set to give
-    exactly the adapted step size.
+    Each chain gets PyMC's NUTS (compiled once) with a fixed diagonal mass matrix (the chain's
+    ``state.inverse_mass``) and the chain's adapted step size as the initial step of the
+    step-size adaptation, which ``tune=0`` never moves (pymc 5.28,
+    ``step_methods/hmc/base_hmc.py`` and ``step_sizes.py``).
 
     Returns
     -------
@@ -230,10 +252,10 @@ def extend_chains(
     import xarray as xr
 
     posts, stats = [], []
+    step = _nuts_step(model, state, target_acceptance)  # compiled once, set per chain
     for c, chain in enumerate(idata.posterior.chain.values):
-        post, stat = _run_one_chain(model, idata, state, c, extra_draws=extra_draws,
-                                    seed=seeds[c], target_acceptance=target_acceptance,
-                                    progress=progress)
+        post, stat = _run_one_chain(model, idata, state, c, step, extra_draws=extra_draws,
+                                    seed=seeds[c], progress=progress)
         posts.append(post.assign_coords(chain=[chain]))
         stats.append(stat.assign_coords(chain=[chain]))
     added_post = xr.concat(posts, dim="chain")
@@ -244,8 +266,7 @@ def extend_chains(
     return out, added_stats
 
 
-def _run_one_chain(model: Any, idata: Any, state: AdaptedState, c: int, *, extra_draws: int,
-                   seed: int, target_acceptance: float, progress: bool) -> tuple[Any, Any]:
+def _nuts_step(model: Any, state: AdaptedState, target_acceptance: float) -> Any:
     import pymc as pm
     from pymc.step_methods.hmc.quadpotential import QuadPotentialDiag
 
@@ -257,11 +278,25 @@ def _run_one_chain(model: Any, idata: Any, state: AdaptedState, c: int, *, extra
         msg = (f"the adapted mass matrix has {size} entries; the model's unconstrained "
                "values have a different size")
         raise ValueError(msg)
+    return pm.NUTS(vars=value_vars, model=model, target_accept=target_acceptance,
+                   potential=QuadPotentialDiag(state.inverse_mass[0]),
+                   step_scale=float(state.step_size[0]) * size ** 0.25)
+
+
+def _run_one_chain(model: Any, idata: Any, state: AdaptedState, c: int, step: Any, *,
+                   extra_draws: int, seed: int, progress: bool) -> tuple[Any, Any]:
+    # Chain c's mass matrix and step size on the one compiled step: with tune=0, pm.sample
+    # resets the step-size adaptation to its initial step and then never adapts (pymc 5.28,
+    # sampling/mcmc.py _iter_sample; step_methods/step_sizes.py DualAverageAdaptation).
+    import pymc as pm
+    from pymc.step_methods.hmc.quadpotential import QuadPotentialDiag
+    from pymc.step_methods.step_sizes import DualAverageAdaptation
+
+    step.potential = QuadPotentialDiag(state.inverse_mass[c])
+    step.step_adapt = DualAverageAdaptation(float(state.step_size[c]), step.target_accept,
+                                            0.05, 0.75, 10)  # PyMC's defaults; unused
     last = idata.posterior.isel(chain=c, draw=-1)
     start = {rv.name: np.asarray(last[rv.name].values) for rv in model.free_RVs}
-    step = pm.NUTS(vars=value_vars, model=model, target_accept=target_acceptance,
-                   potential=QuadPotentialDiag(state.inverse_mass[c]),
-                   step_scale=float(state.step_size[c]) * size ** 0.25)
     run = pm.sample(draws=extra_draws, tune=0, chains=1, cores=1, step=step, initvals=start,
                     random_seed=int(seed), progressbar=progress, model=model,
                     compute_convergence_checks=False)
@@ -293,6 +328,10 @@ def _short(numbers: dict[str, float]) -> list[str]:
             kind = key.removeprefix("ess_")
             out.append(f"smallest {kind} ESS {numbers[key]:.0f} below {ESS_MIN:g}")
     return out
+
+
+def _count(ds: Any, name: str) -> int:
+    return int(np.asarray(ds[name].values).sum()) if name in ds else 0
 
 
 def _first(ds: Any, names: tuple[str, ...]) -> Any:
