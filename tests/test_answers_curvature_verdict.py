@@ -21,6 +21,7 @@ from allolaw.answers.curvature_verdict import (
     audit_evidence,
     judge_curvature,
 )
+from allolaw.testing.verdict_study import ALLOWED, CURVATURE_SCENARIOS
 
 
 def _ev(**kw):
@@ -122,61 +123,27 @@ def test_evidence_recovers_the_size_trend_share_and_overlap_of_hand_built_draws(
 
 # --- small seeded MCMC fits of simulated data with known truth (slow) -------------------
 
-SCENARIOS = {
-    # no taxon spread, no curvature, 8 genera at different sizes
-    "null": dict(curvature=0.0, exponent_sd=0.0, taxon_size_spread=1.5, log_size_sd=0.8),
-    # one curved law, no taxon spread, 8 genera at different sizes
-    "curve": dict(curvature=-0.08, exponent_sd=0.0, taxon_size_spread=1.5, log_size_sd=0.8),
-    # straight laws with taxon exponents SD 0.15, every genus over the same size range
-    "taxa": dict(curvature=0.0, exponent_sd=0.15, taxon_size_spread=0.0, log_size_sd=1.5),
-}
-# Under pure curvature "no differences" is also right when the taxa's size ranges overlap
-# enough that the curve leaves no detectable taxon spread (measured: seed 507, 53% of the
-# log-size variance within genera); the error to rule out is "the taxa differ".
-ALLOWED = {"null": {NO_DIFFERENCES, ONE_CURVE, UNDECIDABLE},
-           "curve": {NO_DIFFERENCES, ONE_CURVE, UNDECIDABLE},
-           "taxa": {OWN_RIGHT}}
+# Scenarios (null; pure curvature; real taxon differences), their allowed verdicts and the fits
+# are in allolaw.testing.verdict_study, shared with benchmarks/verdict_studies.py. Under pure
+# curvature "no differences" is also right when the taxa's size ranges overlap enough that the
+# curve leaves no detectable taxon spread (measured: seed 507, 53% of the log-size variance
+# within genera); the error to rule out is "the taxa differ".
 
 
 def _mcmc_verdict(scenario, seed):
-    import warnings
+    from allolaw.testing.verdict_study import curvature_verdict
 
-    from allolaw.model.builder import build_model
-    from allolaw.model.sampling import fit_model
-    from allolaw.model.spec import parse_spec
-    from allolaw.testing.data import simulate_law
-
-    sim = simulate_law(seed=seed, taxa=(8,), level_names=("genus",), species_per_taxon=8,
-                       exponent=0.75, intercept_sd=0.3, sigma=0.1, **SCENARIOS[scenario])
-    specs = {
-        "taxa_linear": {"taxa": {"levels": "all", "vary": ["intercept", "exponent"]}},
-        "one_curve": {"taxa": {"levels": "all", "vary": ["intercept"]}, "curvature": "shared"},
-        "taxa_curved": {"taxa": {"levels": "all", "vary": ["intercept", "exponent"]},
-                        "curvature": "shared"},
-    }
-    fits = {}
-    for name, raw in specs.items():
-        spec = parse_spec(raw, name=name)
-        model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
-        prior_model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0,
-                                  prior_only=True)
-        with warnings.catch_warnings():
-            # 2 short chains: convergence warnings are expected; the verdict is tested
-            warnings.simplefilter("ignore")
-            fits[name] = fit_model(model, chains=2, draws=300, warmup=300, seed=seed,
-                                   prior_draws=20, prior_model=prior_model)
-    ev = audit_evidence(fits["taxa_linear"], fits["taxa_curved"], fits["one_curve"])
-    return judge_curvature(ev)
+    return curvature_verdict(scenario, seed)
 
 
 def _counts(scenario, seeds):
-    verdicts = [_mcmc_verdict(scenario, s).verdict for s in seeds]
+    verdicts = [_mcmc_verdict(scenario, s)["verdict"] for s in seeds]
     return {v: verdicts.count(v) for v in set(verdicts)}
 
 
 @pytest.mark.slow
 @pytest.mark.mcmc
-@pytest.mark.parametrize("scenario", list(SCENARIOS))
+@pytest.mark.parametrize("scenario", list(CURVATURE_SCENARIOS))
 def test_mcmc_curvature_verdicts_over_20_seeds(scenario):
     counts = _counts(scenario, range(500, 520))
     wrong = sum(n for v, n in counts.items() if v not in ALLOWED[scenario])
@@ -186,7 +153,7 @@ def test_mcmc_curvature_verdicts_over_20_seeds(scenario):
 
 @pytest.mark.slow
 @pytest.mark.mcmc
-@pytest.mark.parametrize("scenario", list(SCENARIOS))
+@pytest.mark.parametrize("scenario", list(CURVATURE_SCENARIOS))
 def test_mcmc_curvature_verdicts_over_3_seeds(scenario):
     counts = _counts(scenario, range(500, 503))
     wrong = sum(n for v, n in counts.items() if v not in ALLOWED[scenario])

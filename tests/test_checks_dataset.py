@@ -105,3 +105,30 @@ def test_fit_with_check_writes_both_outputs_in_one_process(tmp_path, monkeypatch
     report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
     assert report["verdict"] == "pass"
     assert any("check done in" in r.getMessage() for r in caplog.records)
+
+
+def test_chain_extension_of_the_fit_is_copied_into_the_check_json(tmp_path, monkeypatch):
+    config = _config(tmp_path)
+    idata = line_posterior(seed=14)
+    record = {"status": "extended", "reason": "smallest bulk ESS 250 below 400",
+              "backend": "nutpie", "extra_draws_per_chain": 1000,
+              "draws_per_chain_before": 1000, "draws_per_chain_after": 2000,
+              "before": {"rhat": 1.004, "ess_bulk": 250.0, "ess_tail": 380.0},
+              "after": {"rhat": 1.002, "ess_bulk": 520.0, "ess_tail": 700.0}}
+    idata.attrs["chain_extension"] = json.dumps(record)
+    _write_fit(config, idata)
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    check_dataset_model(config, "toy", "pooled")
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["extension"] == record
+    assert "1000 draws further" in report["findings"][0]
+    assert "250.0 → 520.0" in report["findings"][0]
+
+
+def test_fit_without_an_extension_record_writes_null(tmp_path, monkeypatch):
+    config = _config(tmp_path)
+    _write_fit(config, line_posterior(seed=15))
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    check_dataset_model(config, "toy", "pooled")
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["extension"] is None

@@ -139,8 +139,8 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
     # same constant and observed data.
     settings = {"draws": 60, "chains": 2}
     compiling.lighter_jax_rewrites()
-    ours, _ = sampling._sample_nutpie(_tiny_model(), **settings, warmup=60,
-                                     target_acceptance=0.9, seed=21, cores=1, progress=False)
+    ours, _, _ = sampling._sample_nutpie(_tiny_model(), **settings, warmup=60,
+                                        target_acceptance=0.9, seed=21, cores=1, progress=False)
     reference = pm.sample(model=_tiny_model(), **settings, tune=60, target_accept=0.9,
                           random_seed=21, progressbar=False,
                           nuts_sampler="nutpie", compute_convergence_checks=False,

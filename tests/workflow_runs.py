@@ -49,9 +49,10 @@ SMALL_BATCH = {"cell_scaling": ["pooled", "taxa"],
 ONE_DATASET = {"cell_scaling": ["pooled", "taxa"]}
 
 # Sampler overrides merged over config.yaml with --configfile (the same path users take); tiny
-# chains, so checks may warn or fail on ESS, which is fine here: the tests compare runs.
+# chains, so checks may warn or fail on ESS, which is fine here: the tests compare runs. No
+# chain extension (it would run on nearly every tiny fit; tests/test_model_extending.py tests it).
 QUICK = "quick.yaml"
-_QUICK_SAMPLER = {"sampler": {"chains": 2, "draws": 150, "warmup": 150}}
+_QUICK_SAMPLER = {"sampler": {"chains": 2, "draws": 150, "warmup": 150, "extension_draws": 0}}
 
 _GROUPS = ("posterior", "sample_stats", "log_likelihood", "posterior_predictive", "prior",
            "prior_predictive", "observed_data", "constant_data")

@@ -24,7 +24,7 @@ from allolaw.checks.reading import read_posterior
 from allolaw.errors import UserError
 from allolaw.io import atomic_path, write_json
 
-__all__ = ["check_dataset_model"]
+__all__ = ["chain_extension", "check_dataset_model"]
 
 log = logging.getLogger(__name__)
 
@@ -89,6 +89,9 @@ def check_dataset_model(
     # warnings of the fit stage (model/within.py: individuals without a species term) come
     # first among the findings, so the page shows them with the checks
     findings[:0] = json.loads(str(idata.attrs.get("warnings") or "[]"))
+    extension = chain_extension(idata)
+    if extension is not None and extension.get("status") != "not needed":
+        findings.insert(0, _extension_finding(extension))
     groups = innermost_groups(config, dataset, idata)
     ppc = predictive_checks(idata, groups=groups)
     findings.extend(ppc_findings(ppc))
@@ -99,6 +102,7 @@ def check_dataset_model(
         "diagnostics": result.to_list(),
         "findings": findings,
         "refit": refit,
+        "extension": extension,
         "ppc": ppc,
     }
     write_json(paths.check_path(results, dataset, model), _clean_json(payload))
@@ -107,6 +111,30 @@ def check_dataset_model(
     log.info("check %s/%s: %s; check done in %.2f s", dataset, model, result.verdict,
              time.perf_counter() - start)
     return result.verdict
+
+
+def chain_extension(idata: Any) -> dict[str, Any] | None:
+    """The fit stage's chain-extension record (``chain_extension`` attribute), or ``None``.
+
+    ``None`` for fits made before the record existed. See
+    :func:`allolaw.model.extending.extend_if_short` for its keys.
+    """
+    raw = idata.attrs.get("chain_extension")
+    if not raw:
+        return None
+    return json.loads(raw)
+
+
+def _extension_finding(ext: dict[str, Any]) -> str:
+    before, after = ext["before"], ext["after"]
+    if ext["status"] == "extended":
+        return (f"R-hat or ESS fell short after {ext['draws_per_chain_before']} draws per chain "
+                f"({ext['reason']}); every chain was run {ext['extra_draws_per_chain']} draws "
+                "further from its adapted step size and mass matrix, no new warm-up. Worst "
+                f"R-hat {before['rhat']} → {after['rhat']}, smallest bulk ESS "
+                f"{before['ess_bulk']} → {after['ess_bulk']}, smallest tail ESS "
+                f"{before['ess_tail']} → {after['ess_tail']}.")
+    return f"The chains were not extended: {ext['reason']}."
 
 
 def _refit_numbers(result: CheckResult) -> dict[str, Any]:

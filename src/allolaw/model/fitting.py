@@ -118,6 +118,7 @@ def fit_dataset_model(
         threads=threads,
         prior_draws=int(sampler.get("prior_draws", 500)),
         prior_model=prior_model,
+        extension_draws=int(sampler.get("extension_draws", 0)),
     )
     idata.attrs.update(
         {

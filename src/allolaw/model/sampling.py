@@ -16,6 +16,7 @@ kept in the attributes.
 
 from __future__ import annotations
 
+import json
 import logging
 import os
 import sys
@@ -37,6 +38,7 @@ from allolaw.model.compiling import (
     lighter_jax_rewrites,
     per_draw_compile,
 )
+from allolaw.model.extending import AdaptedState, adapted_state_from_nutpie, extend_if_short
 
 __all__ = ["AUTO_BACKEND", "BACKENDS", "fit_model", "resolve_backend"]
 
@@ -64,6 +66,7 @@ def fit_model(
     threads: int = 1,
     prior_draws: int = 500,
     prior_model: pm.Model | None = None,
+    extension_draws: int = 0,
 ) -> az.InferenceData:
     """Sample a model's posterior with NUTS and add every group the later stages read.
 
@@ -90,6 +93,10 @@ def fit_model(
         The model to draw those from: ``build_model(..., prior_only=True)`` for models with
         taxon terms, whose sampled form depends on the data (see
         :func:`allolaw.model.builder.build_model`); ``model`` itself when not given.
+    extension_draws
+        When R-hat or ESS fall short, every chain is run this many draws further, once, from
+        its adapted state (:func:`allolaw.model.extending.extend_if_short`; capped at
+        ``draws``); 0 never extends. Only the nutpie backend hands back its adapted state.
 
     Returns
     -------
@@ -98,8 +105,10 @@ def fit_model(
         ``posterior_predictive`` (``trait``), ``prior``, ``prior_predictive``,
         ``observed_data``, ``constant_data``. ``idata.attrs`` holds ``backend`` (the one that
         ran), ``backend_requested``, ``backend_fallback`` (the error of a failed backend, or
-        empty), ``seed``, ``threads`` and the timings ``compile_seconds``,
-        ``sampling_seconds``, ``predictive_seconds`` and ``wall_seconds``.
+        empty), ``seed``, ``threads``, ``chain_extension`` (JSON record of
+        :func:`~allolaw.model.extending.extend_if_short`) and the timings
+        ``compile_seconds``, ``sampling_seconds``, ``extension_seconds``,
+        ``predictive_seconds`` and ``wall_seconds``.
 
     References
     ----------
@@ -124,11 +133,12 @@ def fit_model(
         "fit: backend %s, %d chains x (%d warm-up + %d draws), %d thread(s), seed %d",
         chosen, chains, warmup, draws, threads, seed,
     )
+    keep_state = extension_draws > 0
     try:
-        idata, compile_s, sampling_s = _sample(
+        idata, compile_s, sampling_s, state = _sample(
             model, chosen, chains=chains, draws=draws, warmup=warmup,
             target_acceptance=target_acceptance,
-            seed=int(seed), threads=threads, progress=progress,
+            seed=int(seed), threads=threads, progress=progress, keep_state=keep_state,
         )
         used = chosen
     except Exception as err:  # any backend failure: fall back to PyMC's own sampler
@@ -136,13 +146,19 @@ def fit_model(
             raise
         fallback = f"{chosen} failed: {type(err).__name__}: {err}"
         log.warning("fit: %s; falling back to pymc", fallback)
-        idata, compile_s, sampling_s = _sample(
+        idata, compile_s, sampling_s, state = _sample(
             model, "pymc", chains=chains, draws=draws, warmup=warmup,
             target_acceptance=target_acceptance,
-            seed=int(seed), threads=threads, progress=progress,
+            seed=int(seed), threads=threads, progress=progress, keep_state=keep_state,
         )
         used = "pymc"
     log.info("fit: sampled in %.1f s (compile %.1f s)", sampling_s, compile_s)
+    phase = time.perf_counter()
+    idata, extension = extend_if_short(
+        model, idata, state, extra_draws=min(int(extension_draws), int(draws)),
+        seed=int(seed), backend=used, target_acceptance=target_acceptance, progress=progress)
+    extension_s = time.perf_counter() - phase
+    log.info("fit: chain extension %s (%s)", extension["status"], extension["reason"])
 
     predictive_s = _add_predictive_groups(idata, model, prior_model=prior_model, seeds=seeds,
                                           prior_draws=prior_draws)
@@ -156,6 +172,8 @@ def fit_model(
             "threads": int(threads),
             "compile_seconds": round(compile_s, 3),
             "sampling_seconds": round(sampling_s, 3),
+            "chain_extension": json.dumps(extension, sort_keys=True),
+            "extension_seconds": round(extension_s, 3),
             "predictive_seconds": round(predictive_s, 3),
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
@@ -260,8 +278,10 @@ def _sample(
     seed: int,
     threads: int,
     progress: bool,
-) -> tuple[az.InferenceData, float, float]:
-    # Returns (idata, compile seconds, sampling seconds). The sampling seconds are the backend's
+    keep_state: bool = False,
+) -> tuple[az.InferenceData, float, float, AdaptedState | None]:
+    # Returns (idata, compile seconds, sampling seconds, adapted state: nutpie with
+    # keep_state only, else None). The sampling seconds are the backend's
     # own clock of its sampling loop; everything else inside pm.sample (graph rewriting, C or
     # numba compilation, initial points) counts as compile time. With numpyro the loop's JIT
     # compilation happens inside its clock, so there "sampling" includes XLA compilation unless
@@ -292,19 +312,19 @@ def _sample(
             apply_jax_cache()
         log.info("fit: %s sampling started", backend)
         start = time.perf_counter()
-        idata, sampling = _sample_nutpie(
+        idata, sampling, state = _sample_nutpie(
             model, draws=draws, warmup=warmup, chains=chains,
             target_acceptance=target_acceptance,
-            seed=seed, cores=max(1, threads), progress=progress)
+            seed=seed, cores=max(1, threads), progress=progress, keep_state=keep_state)
         total = time.perf_counter() - start
-        return idata, total - sampling, sampling
+        return idata, total - sampling, sampling, state
     log.info("fit: %s sampling started", backend)
     start = time.perf_counter()
     idata = pm.sample(**kwargs)
     total = time.perf_counter() - start
     sampling = float(idata.posterior.attrs.get("sampling_time", total))
     sampling = min(sampling, total)
-    return idata, total - sampling, sampling
+    return idata, total - sampling, sampling, None
 
 
 def _sample_nutpie(
@@ -317,7 +337,8 @@ def _sample_nutpie(
     seed: int,
     cores: int,
     progress: bool,
-) -> tuple[az.InferenceData, float]:
+    keep_state: bool = False,
+) -> tuple[az.InferenceData, float, AdaptedState | None]:
     # What pm.sample(nuts_sampler="nutpie") does (pymc 5.28, sampling/mcmc.py:
     # _sample_external_nuts), called directly. pm.sample first assigns step methods, which
     # differentiates the whole log density once per free variable only to learn that NUTS
@@ -325,7 +346,8 @@ def _sample_nutpie(
     # pm.sample took (profiled), thrown away, as nutpie differentiates the graph itself.
     # Same compile options, seed, sampler settings and groups as PyMC's route, so the same
     # draws (tests/test_model_sampling.py checks that against pm.sample). Returns (idata, seconds
-    # of nutpie.sample, which include the first evaluation's XLA compile, as PyMC counts it).
+    # of nutpie.sample, which include the first evaluation's XLA compile, as PyMC counts it,
+    # and with keep_state the adapted step size and mass-matrix diagonal of each chain).
     import arviz as az
     import nutpie
     import pymc as pm
@@ -340,9 +362,14 @@ def _sample_nutpie(
     idata = nutpie.sample(
         compiled, draws=draws, tune=warmup, chains=chains, target_accept=target_acceptance,
         seed=int(seed), progress_bar=progress, cores=cores,
-        low_rank_modified_mass_matrix=True,
+        low_rank_modified_mass_matrix=True, store_mass_matrix=keep_state,
     )
     sampling = time.time() - start
+    # nutpie joins the unconstrained values in the order of model.free_RVs (nutpie 0.16,
+    # compile_pymc._make_functions)
+    state = (adapted_state_from_nutpie(idata, [model.rvs_to_values[rv].name
+                                               for rv in model.free_RVs])
+             if keep_state else None)
     coords, dims = coords_and_dims_for_inferencedata(model)
     groups = {
         name: az.dict_to_dataset(found(model), library=pm, coords=coords, dims=dims,
@@ -352,7 +379,7 @@ def _sample_nutpie(
     }
     idata.add_groups(groups, coords=coords, dims=dims)
     idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup})
-    return idata, sampling
+    return idata, sampling, state
 
 
 def _show_progress() -> bool:

@@ -1,0 +1,187 @@
+"""Tests of allolaw.model.extending: one chain extension from the adapted sampler state.
+
+Hand-built draws for the decision (no MCMC); small seeded nutpie fits of a conjugate normal
+model for the extension itself, checked against its closed-form posterior.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import arviz as az
+import numpy as np
+import pytest
+
+from allolaw.model.extending import (
+    ESS_MIN,
+    RHAT_MAX,
+    AdaptedState,
+    convergence_numbers,
+    extend_if_short,
+)
+
+# --- the decision, on hand-built draws ------------------------------------------------------
+
+
+def _iid(chains, draws, seed, shift=0.0):
+    # invented draws: independent normal values, so R-hat ≈ 1 and ESS ≈ chains × draws
+    rng = np.random.default_rng(seed)
+    mu = rng.normal(size=(chains, draws))
+    mu[0] += shift
+    return az.from_dict(posterior={"mu": mu, "fixed": np.ones((chains, draws))},
+                        sample_stats={"diverging": np.zeros((chains, draws), dtype=bool)})
+
+
+def test_run_that_meets_the_thresholds_is_not_extended():
+    idata = _iid(4, 1000, seed=1)
+    out, record = extend_if_short(None, idata, None, extra_draws=1000, seed=1,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert out is idata
+    assert record["status"] == "not needed"
+    assert record["extra_draws_per_chain"] == 0
+    assert record["draws_per_chain_after"] == 1000
+    assert record["before"]["rhat"] <= RHAT_MAX
+    assert record["before"]["ess_bulk"] >= ESS_MIN
+
+
+def test_short_run_without_an_adapted_state_is_reported_not_extended():
+    idata = _iid(2, 50, seed=2, shift=3.0)
+    out, record = extend_if_short(None, idata, None, extra_draws=50, seed=1, backend="pymc",
+                                  target_acceptance=0.9)
+    assert out is idata
+    assert record["status"] == "not available"
+    assert "backend pymc" in record["reason"]
+    assert "R-hat" in record["reason"]
+    assert "bulk ESS" in record["reason"]
+
+
+def test_short_run_with_extension_off_says_so():
+    _, record = extend_if_short(None, _iid(2, 50, seed=3), None, extra_draws=0, seed=1,
+                                backend="nutpie", target_acceptance=0.9)
+    assert record["status"] == "off"
+    assert "extension_draws is 0" in record["reason"]
+
+
+def test_short_run_with_a_low_rank_mass_matrix_part_is_not_extended():
+    idata = _iid(2, 50, seed=5, shift=3.0)
+    state = AdaptedState(value_vars=("mu",), inverse_mass=np.ones((2, 1)),
+                         step_size=np.array([0.5, 0.5]), low_rank_left_out=np.array([0, 2]))
+    out, record = extend_if_short(None, idata, state, extra_draws=50, seed=1,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert out is idata
+    assert record["status"] == "not available"
+    assert "low-rank part in 2 direction(s)" in record["reason"]
+    assert record["low_rank_directions_left_out"] == [0, 2]
+
+
+def test_convergence_numbers_leave_out_fixed_values_and_match_arviz():
+    idata = _iid(4, 200, seed=4)
+    numbers = convergence_numbers(idata.posterior)
+    # the constant variable "fixed" has no R-hat; the numbers are those of "mu" alone
+    mu = idata.posterior[["mu"]]
+    assert numbers["rhat"] == pytest.approx(float(az.rhat(mu, method="rank")["mu"]), abs=1e-4)
+    assert numbers["ess_tail"] == pytest.approx(float(az.ess(mu, method="tail")["mu"]), abs=1e-3)
+
+
+# --- the extension itself: small seeded nutpie fits -----------------------------------------
+
+# Conjugate normal model with known noise SD 1 and prior mu ~ N(0, 10²); 20 invented
+# observations. Posterior: N(m, s²) with 1/s² = 1/10² + n and m = s²·Σy (Gelman et al. 2013,
+# Bayesian Data Analysis 3rd ed., section 2.5, eq. 2.12).
+_Y = np.random.default_rng(7).normal(1.5, 1.0, size=20)
+
+
+def _model():
+    import pymc as pm
+
+    with pm.Model() as model:
+        mu = pm.Normal("mu", 0.0, 10.0)
+        pm.Normal("trait", mu, 1.0, observed=_Y)
+    return model
+
+
+def _closed_form():
+    s2 = 1.0 / (1.0 / 100.0 + _Y.size)
+    return s2 * _Y.sum(), math.sqrt(s2)
+
+
+@pytest.mark.mcmc
+def test_short_run_is_extended_once_and_the_draws_follow_the_first_ones():
+    from allolaw.model.sampling import fit_model
+
+    model = _model()
+    plain = fit_model(model, chains=2, draws=40, warmup=200, seed=11, backend="nutpie",
+                      prior_draws=10)
+    longer = fit_model(model, chains=2, draws=40, warmup=200, seed=11, backend="nutpie",
+                       prior_draws=10, extension_draws=500)
+    record = json.loads(longer.attrs["chain_extension"])
+    assert json.loads(plain.attrs["chain_extension"])["status"] == "off"
+    assert record["status"] == "extended"
+    # capped at draws: at most twice as long
+    assert record["extra_draws_per_chain"] == 40
+    assert record["draws_per_chain_before"] == 40
+    assert record["draws_per_chain_after"] == 80
+    assert record["before"]["ess_bulk"] < ESS_MIN
+    assert set(record["after"]) == {"rhat", "ess_bulk", "ess_tail"}
+    assert len(record["seeds"]) == 2
+    assert len(record["step_size"]) == 2
+    # shapes: same chains, draws appended; every later group sees all draws
+    assert dict(longer.posterior["mu"].sizes) == {"chain": 2, "draw": 80}
+    assert list(longer.posterior.chain.values) == list(plain.posterior.chain.values)
+    assert list(longer.posterior.draw.values) == list(range(80))
+    assert longer.sample_stats.sizes["draw"] == 80
+    assert not np.isnan(longer.sample_stats["diverging"].values.astype(float)).any()
+    assert longer.log_likelihood["trait"].sizes["draw"] == 80
+    assert longer.posterior_predictive["trait"].sizes["draw"] == 80
+    # the first 40 draws of each chain are the unextended fit's, unchanged
+    np.testing.assert_array_equal(longer.posterior["mu"].values[:, :40],
+                                  plain.posterior["mu"].values)
+    # the added draws differ per chain (own seeds) and are new draws
+    added = longer.posterior["mu"].values[:, 40:]
+    assert not np.array_equal(added[0], added[1])
+
+
+@pytest.mark.mcmc
+def test_extended_draws_sample_the_closed_form_posterior():
+    from allolaw.model.extending import extend_chains
+    from allolaw.model.sampling import _sample
+
+    model = _model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=50, warmup=300,
+                                 target_acceptance=0.9, seed=5, threads=1, progress=False,
+                                 keep_state=True)
+    assert state is not None
+    assert state.value_vars == ("mu",)
+    assert "mass_matrix_stds" not in idata.sample_stats  # read, then dropped
+    out, added = extend_chains(model, idata, state, extra_draws=1500, seeds=[1, 2],
+                               target_acceptance=0.9)
+    assert dict(added["diverging"].sizes) == {"chain": 2, "draw": 1500}
+    draws = out.posterior["mu"].values[:, 50:]
+    m, s = _closed_form()
+    mcse = float(az.mcse(out.posterior[["mu"]].isel(draw=slice(50, None)))["mu"])
+    assert abs(draws.mean() - m) < 4 * mcse
+    assert draws.std() == pytest.approx(s, rel=0.1)
+    # the adapted step size was used as it was, not re-tuned
+    np.testing.assert_allclose(added["step_size"].values[:, 0], state.step_size, rtol=1e-9)
+
+
+@pytest.mark.mcmc
+def test_extension_that_diverges_is_discarded_and_the_fit_kept():
+    import dataclasses
+
+    from allolaw.model.sampling import _sample
+
+    model = _model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=40, warmup=200,
+                                 target_acceptance=0.9, seed=8, threads=1, progress=False,
+                                 keep_state=True)
+    # a step size 200 times the adapted one: the continuation cannot follow the posterior
+    wild = dataclasses.replace(state, step_size=state.step_size * 200)
+    out, record = extend_if_short(model, idata, wild, extra_draws=40, seed=8,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert record["status"] == "discarded"
+    assert record["divergences"] > 0
+    assert out is idata
+    assert out.posterior.sizes["draw"] == 40
+    assert record["draws_per_chain_after"] == 40
