@@ -179,6 +179,8 @@ def build_model(
                 features=feature if whiten else None,
                 target=pt.as_tensor_variable(inputs.log_trait) - offset,
                 noise_var=total_sd**2 * pt.ones_like(centred_size),
+                correlation_eta=(float(pri["taxon_correlation"]["eta"])
+                                 if spec.taxa["correlation"] == "estimated" else None),
             )
             for t in varying:
                 mu = mu + per_species[t] * feature[t]

@@ -11,6 +11,7 @@ import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 
+from allolaw.model.correlated import correlation_factor, step_factor
 from allolaw.model.inputs import Inputs
 from allolaw.model.spec import ModelSpec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
@@ -137,6 +138,8 @@ def taxon_terms(
     features: dict[str, Any] | None,
     target: Any,
     noise_var: Any,
+    *,
+    correlation_eta: float | None = None,
 ) -> dict[str, Any]:
     """Population and taxon values of the varying ``terms``; returns per-species values.
 
@@ -162,6 +165,11 @@ def taxon_terms(
     ``value = parent + s · w`` (the prior draws use it; so does ``parameterisation:
     non-centred``).
 
+    With ``correlation_eta`` (and two or more terms) the deviations of a taxon's terms are
+    correlated, one LKJ(``correlation_eta``) correlation matrix per level
+    (:mod:`allolaw.model.correlated`); the step of each level is then the lower-triangular
+    ``diag(s)·L`` and the messages and the map are the same with that factor.
+
     Every step is element-wise over taxa with k × k blocks (k ≤ 3 terms) written out entry by
     entry, so any backend (C, numba, JAX) compiles it to plain loops.
     """
@@ -175,7 +183,13 @@ def taxon_terms(
     s0 = [float(priors[term]["sd"]) for term in terms]
     # step SDs per depth (depth 0 is the population, whose step is its prior)
     step = [[pt.as_tensor_variable(v) for v in s0]]
-    step += [[sds[term][lv] for term in terms] for lv in range(len(levels))]
+    if correlation_eta is not None and len(terms) > 1:
+        # correlated deviations (model/correlated.py): D = diag(SDs)·(LKJ Cholesky factor)
+        step += [step_factor([sds[term][lv] for term in terms],
+                             correlation_factor(terms, level, correlation_eta))
+                 for lv, level in enumerate(levels)]
+    else:
+        step += [[sds[term][lv] for term in terms] for lv in range(len(levels))]
 
     # upward pass: information (precision P, vector h) of each node from the data below it
     if features is not None:
