@@ -26,7 +26,8 @@ def test_correlated_whitened_terms_give_the_exact_marginal_likelihood():
     # the tree potential must still equal the marginal density of the data with every taxon
     # value integrated out, for any standard normals w. Outside check: the dense covariance
     # of the nested model, y ~ N(F m, Σ_levels F_l (Σ_l ⊗ same-taxon) F_lᵀ + F S0 Fᵀ + σ² I)
-    # (Gelman et al. 2013, Bayesian Data Analysis 3rd ed., ch. 15), with scipy's
+    # (Gelman et al. 2013, Bayesian Data Analysis 3rd ed., ch. 15; F_l the features centred
+    # at the mean log size, where the SDs and correlations live), with scipy's
     # multivariate normal; the correlation matrices from the partial correlations by the
     # textbook formula above.
     sim = _nested_data()
@@ -45,6 +46,10 @@ def test_correlated_whitened_terms_give_the_exact_marginal_likelihood():
     x = data["log_size"].to_numpy() - ref
     y = data["log_trait"].to_numpy()
     F = np.column_stack([np.ones_like(x), x, x**2])
+    # the taxon covariance is that of deviations at the data's centre (the same law written
+    # around the mean log size): their loadings are the centred features
+    xc = data["log_size"].to_numpy() - data["log_size"].mean()
+    Fc = np.column_stack([np.ones_like(xc), xc, xc**2])
     m0, s0 = np.array([0.4, 1.0, 0.0]), np.array([2.0, 1.0, 0.25])
     rng = np.random.default_rng(11)
     for trial in range(3):
@@ -61,7 +66,7 @@ def test_correlated_whitened_terms_give_the_exact_marginal_likelihood():
                 assert float(corr_fn(point)[0]) == pytest.approx(R[1, 2], abs=1e-12)
             same = pd.get_dummies(data[level]).to_numpy(dtype=float)
             same = same @ same.T
-            cov += (F @ (np.outer(sd, sd) * R) @ F.T) * same
+            cov += (Fc @ (np.outer(sd, sd) * R) @ Fc.T) * same
         for name in point:
             if name.endswith("_w"):
                 point[name] = rng.normal(0.0, 3.0, point[name].shape)

@@ -135,6 +135,10 @@ def build_model(
         log_size_ref = pm.Data("log_size_ref", float(log_reference_size))
         for level, taxa in inputs.taxa.items():
             pm.Data(f"taxon_index__{level}", taxa.index, dims="species")
+        # taxon SDs and correlations describe deviations at this centre (model/correlated.py)
+        centre = float(np.mean(inputs.log_size))
+        if varying:
+            pm.Data("log_size_centre", centre)
 
         # terms shared by all species
         shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
@@ -181,6 +185,7 @@ def build_model(
                 noise_var=total_sd**2 * pt.ones_like(centred_size),
                 correlation_eta=(float(pri["taxon_correlation"]["eta"])
                                  if spec.taxa["correlation"] == "estimated" else None),
+                centre_shift=float(log_reference_size) - centre,
             )
             for t in varying:
                 mu = mu + per_species[t] * feature[t]

@@ -3,7 +3,7 @@
 A layered tree has a root (layer 0) and layers of nodes below it; each node's parent is in the
 layer above. Each node carries k values (k ≤ 3 here) that are normal given the parent's values,
 ``value = parent + D·step`` with ``D`` one step SD per term and layer (or, for correlated
-terms, a lower-triangular factor per layer). Data enter as information
+terms, a full k × k matrix per layer). Data enter as information
 (precision ``P`` and vector ``h``, one k × k block per node) at the deepest layer.
 :func:`pass_up` sends the information up the tree (each node's data, then each parent's
 children) and :func:`pass_down` maps standard normals to the node values through the exact
@@ -97,8 +97,8 @@ def pass_up(tree: LayeredTree, step: list[list[Any]], P: Any, h: Any
     """Information of each layer from the data below it, and the Cholesky factors used.
 
     ``step[d]`` is the step of layer ``d`` (layer 0: the root's prior): k step SDs (a
-    diagonal ``D``) or a k × k lower-triangular factor ``D`` given row by row, entries above
-    the diagonal the float 0.0 (correlated terms; :func:`step_matrix`). With ``P = h = None``
+    diagonal ``D``) or any invertible k × k ``D`` given row by row, structural zeros as the
+    float 0.0 (correlated terms; :func:`step_matrix`). With ``P = h = None``
     (no data message) every layer's information is ``(None, None)``.
     Returns ``info[d] = (P, h)`` and ``chol[d]``, the factor of ``B = Dᵀ P D + I``.
     """
@@ -139,7 +139,7 @@ def pass_down(tree: LayeredTree, step: list[list[Any]], root_mean: list[float], 
 
     Each node's value is drawn given its parent's value and its own information (from
     :func:`pass_up`); without information it is the plain non-centred form
-    ``parent + D·w`` (``D`` diagonal or lower-triangular, see :func:`pass_up`). Returns the
+    ``parent + D·w`` (``D`` diagonal or full, see :func:`pass_up`). Returns the
     values per layer (k tensors each) and the log density to add as a potential: the prior
     density of the values plus the log-Jacobian minus the N(0, 1) density of ``w`` (zero
     without information).
