@@ -27,6 +27,7 @@ import pytensor.tensor as pt
 from allolaw.errors import UserError
 from allolaw.model.inputs import read_inputs
 from allolaw.model.phylo_terms import ancestry_term
+from allolaw.model.scatter import scatter_level, scatter_term
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
 from allolaw.model.within import split_log_size, within_term
@@ -148,6 +149,9 @@ def build_model(
         size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten)
         if spec.size_error == "ratio":
             sigma = size.sigma
+        scatter = scatter_level(spec, levels)  # scatter by taxon (model/scatter.py)
+        if scatter is not None:
+            sigma = scatter_term(model, data, spec, sigma, scatter)
         centred_size = size.value - log_size_ref
         feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
                    "curvature": centred_size**2}
