@@ -93,8 +93,10 @@ def build_model(
     nested like the spec's taxon levels (:func:`~allolaw.model.terms.true_log_size`), one
     normal population without taxon levels. With ``ratio`` errors (fixed ratio, no scatter
     beyond measurement error) this is the Bayesian form of Deming regression (Deming 1943).
-    Taxon deviations are independent normal terms per level (no correlation between the
-    intercept and exponent deviations of a taxon). The sampler sees them whitened by the data
+    Taxon deviations are normal per level, the terms of one taxon correlated (LKJ prior, the
+    default) or independent; their SDs and correlations describe the deviations at the data's
+    centre size, so the reference size changes only how taxon intercepts are reported
+    (:mod:`allolaw.model.correlated`). The sampler sees them whitened by the data
     (:func:`taxon_terms`): for a law linear in the taxon values with normal residuals and
     exact sizes the map is exact and the funnel between taxon values and their SDs
     (Betancourt & Girolami 2015) is gone; otherwise it is an approximation that reduces it,

@@ -259,6 +259,9 @@ def describe_spec(spec: ModelSpec) -> str:
             "(or from the population law at the outermost level), with an SD estimated from "
             "the data (partial pooling)."
         )
+        n_terms = len(vary) + (spec.curvature == "shared_and_taxa")
+        if n_terms > 1:
+            sentences.append(_describe_correlation(spec))
     else:
         sentences.append("All species share one law (no taxon terms).")
     if spec.curvature == "shared":
@@ -330,6 +333,18 @@ def describe_spec(spec: ModelSpec) -> str:
            f"{pri['within_exponent']['sd']:g})." if spec.within_species != "together" else ".")
     )
     return " ".join(sentences)
+
+
+def _describe_correlation(spec: ModelSpec) -> str:
+    where = ("The SDs describe the deviations at the data's centre size (the geometric mean "
+             "of the sizes), whatever the reference size")
+    if spec.taxa["correlation"] == "none":
+        return f"A taxon's deviations of different terms are independent. {where}."
+    eta = spec.priors["taxon_correlation"]["eta"]
+    return (f"A taxon's deviations of different terms are correlated, one correlation matrix "
+            f"per level with an LKJ prior of shape {eta:g} (Lewandowski, Kurowicka & Joe "
+            f"2009; 1 is uniform over correlation matrices). {where}, and so do the "
+            "correlations.")
 
 
 def _describe_ancestry(spec: ModelSpec) -> str:
