@@ -32,6 +32,7 @@ DEMO_MODELS = [
     "taxa_robust",
     "taxa_errors_robust",
     "taxa_errors_temperature",
+    "taxa_errors_scatter",
 ]
 
 
