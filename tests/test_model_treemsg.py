@@ -54,6 +54,10 @@ def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
     x = data["log_size"].to_numpy() - ref
     y = data["log_trait"].to_numpy()
     feature = {"intercept": np.ones_like(x), "exponent": x, "curvature": x**2}
+    # the taxon SDs are those of deviations at the data's centre (model/correlated.py): the
+    # same law written around the mean log size
+    xc = data["log_size"].to_numpy() - data["log_size"].mean()
+    centred = {"intercept": np.ones_like(xc), "exponent": xc, "curvature": xc**2}
     prior = {"intercept": (0.4, 2.0), "exponent": (1.0, 1.0), "curvature": (0.0, 0.25)}
     for trial in range(3):
         point = model.initial_point()
@@ -74,11 +78,11 @@ def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
         cov = sigma**2 * np.eye(len(y))
         for term in terms:
             m0, s0 = prior[term]
-            paths = [np.ones((len(y), 1)) * s0]
+            paths = [np.ones((len(y), 1)) * s0 * feature[term][:, None]]
             for level in used:
                 onehot = pd.get_dummies(data[level]).to_numpy(dtype=float)
-                paths.append(onehot * sds[term, level])
-            loading = np.concatenate(paths, axis=1) * feature[term][:, None]
+                paths.append(onehot * sds[term, level] * centred[term][:, None])
+            loading = np.concatenate(paths, axis=1)
             mean += m0 * feature[term]
             cov += loading @ loading.T
         if shared_exponent is not None:
@@ -180,27 +184,32 @@ def test_whitened_map_is_an_exact_change_of_variables_for_robust_models_too():
     value, potential = theta(w)
     base, _ = theta(np.zeros_like(w))
     jac = np.array([theta(e)[0] - base for e in np.eye(len(w))]).T
-    # dense nested prior of (population, orders, families) per term
+    # dense nested prior of (population, orders, families) per term; the taxon SDs are those
+    # of deviations at the data's centre, so a deviation at the reference is A·δ with
+    # A = [[1, Δ], [0, 1]], Δ = reference − mean log size (the same law written around
+    # another centre; model/correlated.py)
     parent = sim.data.groupby("family", sort=False)["order"].first()
     orders = list(dict.fromkeys(sim.data["order"]))
-    mean, blocks = [], []
-    for t, (m0, s0) in zip(names, [(0.4, 2.0), (1.0, 1.0)], strict=True):
-        n_o, n_f = len(orders), len(parent)
-        load = np.zeros((1 + n_o + n_f, 1 + n_o + n_f))
-        load[:, 0] = s0
-        for i in range(n_o):
-            load[1 + i, 1 + i] = sds[t, "order"]
-        for j, fam in enumerate(parent.index):
-            o = orders.index(parent[fam])
-            load[1 + n_o + j, 1 + o] = sds[t, "order"]
-            load[1 + n_o + j, 1 + n_o + j] = sds[t, "family"]
-        mean += [m0] * (1 + n_o + n_f)
-        blocks.append(load @ load.T)
-    cov = np.zeros((len(mean), len(mean)))
-    at = 0
-    for block in blocks:
-        cov[at:at + len(block), at:at + len(block)] = block
-        at += len(block)
+    shift = 0.1 - float(sim.data["log_size"].mean())
+    A = np.array([[1.0, shift], [0.0, 1.0]])
+    n_o, n_f = len(orders), len(parent)
+    nodes_per_term = 1 + n_o + n_f
+    # rows: (term, node); columns: the two population steps, then (term, taxon) steps
+    load = np.zeros((2 * nodes_per_term, 2 + 2 * (n_o + n_f)))
+    mean = []
+    for t, (m0, s0) in enumerate([(0.4, 2.0), (1.0, 1.0)]):
+        mean += [m0] * nodes_per_term
+        rows = t * nodes_per_term + np.arange(nodes_per_term)
+        load[rows, t] = s0
+        for u, term in enumerate(names):
+            col = 2 + u * (n_o + n_f)
+            for i in range(n_o):
+                load[rows[1 + i], col + i] = A[t, u] * sds[term, "order"]
+            for j, fam in enumerate(parent.index):
+                o = orders.index(parent[fam])
+                load[rows[1 + n_o + j], col + o] = A[t, u] * sds[term, "order"]
+                load[rows[1 + n_o + j], col + n_o + j] = A[t, u] * sds[term, "family"]
+    cov = load @ load.T
     expected = (stats.multivariate_normal(mean, cov).logpdf(value)
                 + np.linalg.slogdet(jac)[1])
     got = potential + stats.norm.logpdf(w).sum()

@@ -27,6 +27,7 @@ import pytensor.tensor as pt
 from allolaw.errors import UserError
 from allolaw.model.inputs import read_inputs
 from allolaw.model.phylo_terms import ancestry_term
+from allolaw.model.scatter import scatter_level, scatter_term
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
 from allolaw.model.within import split_log_size, within_term
@@ -92,8 +93,10 @@ def build_model(
     nested like the spec's taxon levels (:func:`~allolaw.model.terms.true_log_size`), one
     normal population without taxon levels. With ``ratio`` errors (fixed ratio, no scatter
     beyond measurement error) this is the Bayesian form of Deming regression (Deming 1943).
-    Taxon deviations are independent normal terms per level (no correlation between the
-    intercept and exponent deviations of a taxon). The sampler sees them whitened by the data
+    Taxon deviations are normal per level, the terms of one taxon correlated (LKJ prior, the
+    default) or independent; their SDs and correlations describe the deviations at the data's
+    centre size, so the reference size changes only how taxon intercepts are reported
+    (:mod:`allolaw.model.correlated`). The sampler sees them whitened by the data
     (:func:`taxon_terms`): for a law linear in the taxon values with normal residuals and
     exact sizes the map is exact and the funnel between taxon values and their SDs
     (Betancourt & Girolami 2015) is gone; otherwise it is an approximation that reduces it,
@@ -135,6 +138,10 @@ def build_model(
         log_size_ref = pm.Data("log_size_ref", float(log_reference_size))
         for level, taxa in inputs.taxa.items():
             pm.Data(f"taxon_index__{level}", taxa.index, dims="species")
+        # taxon SDs and correlations describe deviations at this centre (model/correlated.py)
+        centre = float(np.mean(inputs.log_size))
+        if varying:
+            pm.Data("log_size_centre", centre)
 
         # terms shared by all species
         shared = {t: pm.Normal(t, float(term_priors[t]["mean"]), float(term_priors[t]["sd"]))
@@ -144,6 +151,9 @@ def build_model(
         size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten)
         if spec.size_error == "ratio":
             sigma = size.sigma
+        scatter = scatter_level(spec, levels)  # scatter by taxon (model/scatter.py)
+        if scatter is not None:
+            sigma = scatter_term(model, data, spec, sigma, scatter)
         centred_size = size.value - log_size_ref
         feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
                    "curvature": centred_size**2}
@@ -179,6 +189,9 @@ def build_model(
                 features=feature if whiten else None,
                 target=pt.as_tensor_variable(inputs.log_trait) - offset,
                 noise_var=total_sd**2 * pt.ones_like(centred_size),
+                correlation_eta=(float(pri["taxon_correlation"]["eta"])
+                                 if spec.taxa["correlation"] == "estimated" else None),
+                centre_shift=float(log_reference_size) - centre,
             )
             for t in varying:
                 mu = mu + per_species[t] * feature[t]

@@ -11,6 +11,7 @@ import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 
+from allolaw.model.correlated import level_step
 from allolaw.model.inputs import Inputs
 from allolaw.model.spec import ModelSpec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
@@ -137,6 +138,9 @@ def taxon_terms(
     features: dict[str, Any] | None,
     target: Any,
     noise_var: Any,
+    *,
+    correlation_eta: float | None = None,
+    centre_shift: float = 0.0,
 ) -> dict[str, Any]:
     """Population and taxon values of the varying ``terms``; returns per-species values.
 
@@ -162,6 +166,12 @@ def taxon_terms(
     ``value = parent + s · w`` (the prior draws use it; so does ``parameterisation:
     non-centred``).
 
+    The SDs (and, with ``correlation_eta``, one LKJ(``correlation_eta``) correlation matrix
+    per level) describe the deviations at the data's centre size, ``centre_shift`` = log
+    reference size minus that centre below the reference (:mod:`allolaw.model.correlated`):
+    the step of each level is then a full k × k matrix ``A·diag(s)·L`` and the messages and
+    the map are the same with that matrix.
+
     Every step is element-wise over taxa with k × k blocks (k ≤ 3 terms) written out entry by
     entry, so any backend (C, numba, JAX) compiles it to plain loops.
     """
@@ -175,7 +185,10 @@ def taxon_terms(
     s0 = [float(priors[term]["sd"]) for term in terms]
     # step SDs per depth (depth 0 is the population, whose step is its prior)
     step = [[pt.as_tensor_variable(v) for v in s0]]
-    step += [[sds[term][lv] for term in terms] for lv in range(len(levels))]
+    # deviations at the data's centre, correlated or not (model/correlated.py)
+    step += [level_step(terms, [sds[term][lv] for term in terms], level,
+                        eta=correlation_eta, shift=centre_shift)
+             for lv, level in enumerate(levels)]
 
     # upward pass: information (precision P, vector h) of each node from the data below it
     if features is not None:

@@ -2,7 +2,8 @@
 
 A layered tree has a root (layer 0) and layers of nodes below it; each node's parent is in the
 layer above. Each node carries k values (k ≤ 3 here) that are normal given the parent's values,
-``value = parent + D·step`` with one step SD per term and layer. Data enter as information
+``value = parent + D·step`` with ``D`` one step SD per term and layer (or, for correlated
+terms, a full k × k matrix per layer). Data enter as information
 (precision ``P`` and vector ``h``, one k × k block per node) at the deepest layer.
 :func:`pass_up` sends the information up the tree (each node's data, then each parent's
 children) and :func:`pass_down` maps standard normals to the node values through the exact
@@ -39,6 +40,7 @@ __all__ = [
     "pass_down",
     "pass_up",
     "segment_sum",
+    "step_matrix",
 ]
 
 
@@ -94,9 +96,11 @@ def pass_up(tree: LayeredTree, step: list[list[Any]], P: Any, h: Any
             ) -> tuple[list[Any], list[Any]]:
     """Information of each layer from the data below it, and the Cholesky factors used.
 
-    ``step[d]`` holds the k step SDs of layer ``d`` (layer 0: the root's prior SDs). With
-    ``P = h = None`` (no data message) every layer's information is ``(None, None)``.
-    Returns ``info[d] = (P, h)`` and ``chol[d]``, the factor of ``B = D P D + I``.
+    ``step[d]`` is the step of layer ``d`` (layer 0: the root's prior): k step SDs (a
+    diagonal ``D``) or any invertible k × k ``D`` given row by row, structural zeros as the
+    float 0.0 (correlated terms; :func:`step_matrix`). With ``P = h = None``
+    (no data message) every layer's information is ``(None, None)``.
+    Returns ``info[d] = (P, h)`` and ``chol[d]``, the factor of ``B = Dᵀ P D + I``.
     """
     depths = tree.depths
     k = len(step[0])
@@ -106,21 +110,22 @@ def pass_up(tree: LayeredTree, step: list[list[Any]], P: Any, h: Any
         info[d] = (P, h)
         if P is None:
             continue
-        D = step[d]
-        B = [[D[i] * P[i][j] * D[j] + (1.0 if i == j else 0.0) for j in range(k)]
-             for i in range(k)]
+        D = step_matrix(step[d])
+        # PD = P·D; B = Dᵀ P D + I
+        PD = [[_dot((P[i][m], D[m][j]) for m in range(k)) for j in range(k)] for i in range(k)]
+        B = [[_dot((D[m][i], PD[m][j]) for m in range(k)) + (1.0 if i == j else 0.0)
+              for j in range(k)] for i in range(k)]
         L = cholesky(B)
         chol[d] = L
         if d == 0:
             break
         # the message a node sends its parent: N(parent; ·) with precision
-        # Q = (P⁻¹ + S)⁻¹ = P − (DP)ᵀ B⁻¹ (DP) and vector g = h − (DP)ᵀ B⁻¹ (D h), S = D²
-        DP = [[D[i] * P[i][j] for j in range(k)] for i in range(k)]
-        Y = [cho_solve(L, [DP[i][c] for i in range(k)]) for c in range(k)]  # columns
-        z = cho_solve(L, [D[i] * h[i] for i in range(k)])
-        Q = [[P[i][j] - sum(DP[m][i] * Y[j][m] for m in range(k)) for j in range(k)]
+        # Q = (P⁻¹ + D Dᵀ)⁻¹ = P − PD B⁻¹ (PD)ᵀ and vector g = h − PD B⁻¹ Dᵀ h
+        Y = [cho_solve(L, PD[c]) for c in range(k)]  # B⁻¹ (row c of PD)
+        z = cho_solve(L, [_dot((D[m][i], h[m]) for m in range(k)) for i in range(k)])
+        Q = [[P[i][j] - sum(PD[i][m] * Y[j][m] for m in range(k)) for j in range(k)]
              for i in range(k)]
-        g = [h[i] - sum(DP[m][i] * z[m] for m in range(k)) for i in range(k)]
+        g = [h[i] - sum(PD[i][m] * z[m] for m in range(k)) for i in range(k)]
         parents = tree.parent[depths[d]] - depths[d - 1][0]
         n_par = len(depths[d - 1])
         P = [[segment_sum(Q[i][j], parents, n_par) for j in range(k)] for i in range(k)]
@@ -134,16 +139,17 @@ def pass_down(tree: LayeredTree, step: list[list[Any]], root_mean: list[float], 
 
     Each node's value is drawn given its parent's value and its own information (from
     :func:`pass_up`); without information it is the plain non-centred form
-    ``parent + D·w``. Returns the values per layer (k tensors each) and the log density to add
-    as a potential: the prior density of the values plus the log-Jacobian minus the N(0, 1)
-    density of ``w`` (zero without information).
+    ``parent + D·w`` (``D`` diagonal or full, see :func:`pass_up`). Returns the
+    values per layer (k tensors each) and the log density to add as a potential: the prior
+    density of the values plus the log-Jacobian minus the N(0, 1) density of ``w`` (zero
+    without information).
     """
     depths = tree.depths
     k = len(step[0])
     values: list[list[Any]] = []
     density = pt.as_tensor_variable(0.0)
     for d, nodes in enumerate(depths):
-        D = step[d]
+        D = step_matrix(step[d])
         if d == 0:
             parent = [pt.as_tensor_variable(np.full(1, v)) for v in root_mean]
         else:
@@ -152,20 +158,44 @@ def pass_down(tree: LayeredTree, step: list[list[Any]], root_mean: list[float], 
         wd = [w[i][nodes] for i in range(k)]
         P, h = info[d]
         if P is None:
-            values.append([parent[i] + D[i] * wd[i] for i in range(k)])
+            values.append([parent[i] + _dot((D[i][j], wd[j]) for j in range(k))
+                           for i in range(k)])
             continue
         L = chol[d]
-        # value = parent + D u with u = B⁻¹ D (h − P·parent) + L⁻ᵀ w; the potential is the
+        # value = parent + D u with u = B⁻¹ Dᵀ (h − P·parent) + L⁻ᵀ w; the potential is the
         # prior density of the value plus the log-Jacobian minus the N(0, 1) density of w:
-        # −Σ log diag L − |u|²/2 + |w|²/2 (no division by an SD: finite as any SD → 0)
+        # −Σ log diag L − |u|²/2 + |w|²/2 (log|det D| cancels: finite as any SD → 0)
         resid = [h[i] - sum(P[i][j] * parent[j] for j in range(k)) for i in range(k)]
-        a = cho_solve(L, [D[i] * resid[i] for i in range(k)])
+        a = cho_solve(L, [_dot((D[m][i], resid[m]) for m in range(k)) for i in range(k)])
         e = back_solve(L, wd)
         u = [a[i] + e[i] for i in range(k)]
-        values.append([parent[i] + D[i] * u[i] for i in range(k)])
+        values.append([parent[i] + _dot((D[i][j], u[j]) for j in range(k)) for i in range(k)])
         density = density + sum(
             pt.sum(-pt.log(L[i][i]) - 0.5 * u[i] ** 2 + 0.5 * wd[i] ** 2) for i in range(k))
     return values, density
+
+
+def step_matrix(step: list[Any]) -> list[list[Any]]:
+    """A layer's step as a k × k matrix: k SDs become a diagonal (off-diagonal float 0.0)."""
+    if isinstance(step[0], list):
+        return step
+    k = len(step)
+    return [[step[i] if i == j else 0.0 for j in range(k)] for i in range(k)]
+
+
+def _dot(pairs: Any) -> Any:
+    # Σ a·b over the pairs, leaving out products with a structural zero (the float 0.0), so a
+    # diagonal step builds the same graph as before the correlated form existed
+    total: Any = 0.0
+    for a, b in pairs:
+        if _zero(a) or _zero(b):
+            continue
+        total = a * b if _zero(total) else total + a * b
+    return total
+
+
+def _zero(x: Any) -> bool:
+    return isinstance(x, float) and x == 0.0
 
 
 def segment_sum(values: Any, index: np.ndarray, n: int) -> Any:

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from allolaw.report.correlation import correlation_sentences
 from allolaw.report.figures import ppc_figures
 from allolaw.report.formatting import STATUS_ORDER, fmt, isnan, truthy
 
@@ -96,7 +97,8 @@ def data_section(
 
 
 def model_section(
-    name: str, idata: Any, check: dict[str, Any] | None, *, primary: bool, trait_unit: str
+    name: str, idata: Any, check: dict[str, Any] | None, *, primary: bool, trait_unit: str,
+    size_unit: str = "",
 ) -> dict[str, Any]:
     out: dict[str, Any] = {"name": name, "primary": primary, "fitted": idata is not None}
     attrs = dict(idata.attrs) if idata is not None else {}
@@ -112,6 +114,8 @@ def model_section(
     out["wall_seconds"] = attrs.get("wall_seconds")
     out["refit_attr"] = _json_attr(attrs.get("refit"))
     out["parameters"] = _parameter_summary(idata) if idata is not None else []
+    out["correlations"] = (correlation_sentences(idata, size_unit=size_unit)
+                           if idata is not None else [])
     out["check"] = check
     out["verdict"] = (check or {}).get("verdict", "missing")
     if check is not None:
@@ -158,7 +162,10 @@ def _parameter_summary(idata: Any) -> list[dict[str, Any]]:
     rows = []
     names = [v for v in _SUMMARY_VARS if v in post]
     names += sorted(v for v in post.data_vars if v.startswith(("exponent_sd__", "intercept_sd__",
-                                                               "coef__")))
+                                                               "curvature_sd__", "coef__")))
+    # correlations of taxon deviations, beside their SDs (report/correlation.py)
+    names += sorted(v for v in post.data_vars if v.startswith("correlation_")
+                    and not v.startswith("correlation_partial"))
     for var in names:
         draws = np.asarray(post[var].values, dtype=float).reshape(-1)
         q = np.quantile(draws, [0.05, 0.5, 0.95])

@@ -75,6 +75,7 @@ def summarise_dataset(
     fits = {}
     model_info = []
     trait_unit = ((prepared or {}).get("canonical_units") or {}).get("trait") or ds["trait"]["unit"]
+    size_unit = ((prepared or {}).get("canonical_units") or {}).get("size") or ds["size"]["unit"]
     for name in models:
         idata = _read_posterior(paths.posterior_path(results, dataset, name), missing, name)
         check = _read_json(paths.check_path(results, dataset, name), missing,
@@ -82,7 +83,8 @@ def summarise_dataset(
         if idata is not None:
             fits[name] = idata
         model_info.append(
-            model_section(name, idata, check, primary=name == primary, trait_unit=trait_unit)
+            model_section(name, idata, check, primary=name == primary, trait_unit=trait_unit,
+                          size_unit=size_unit)
         )
 
     levels = list((prepared or {}).get("levels") or _config_levels(ds))
