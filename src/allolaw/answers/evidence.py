@@ -341,7 +341,9 @@ def _above_conditional(idata: az.InferenceData, spec: dict[str, Any], m_a: float
             z = np.asarray(const[cov].values, dtype=float).reshape(1, -1)
             fixed = fixed + _flat(post[name])[:, None] * z
     var = _flat(post["sigma"])[:, None] ** 2
-    if "sd_log_trait" in const:
+    if "trait_error_sd_mean" in post:  # trait error SDs estimated (model/error_sd.py)
+        var = var + _flat_matrix(post["trait_error_sd_mean"], "species") ** 2
+    elif "sd_log_trait" in const:
         var = var + np.asarray(const["sd_log_trait"].values, dtype=float).reshape(1, -1) ** 2
     hinge, var = np.broadcast_arrays(hinge, var, np.empty((1, y.size)))[:2]
     prec = s_a**-2 + np.sum(hinge**2 / var, axis=1)

@@ -233,7 +233,9 @@ def _data_terms(
             offset = offset + flat(post[name])[:, None] * z
     sigma = flat(post["sigma"])[:, None]
     var = sigma**2
-    if "sd_log_trait" in const:
+    if "trait_error_sd_mean" in post:  # trait error SDs estimated (model/error_sd.py)
+        var = var + flat_matrix(post["trait_error_sd_mean"], "species") ** 2
+    elif "sd_log_trait" in const:
         var = var + np.asarray(const["sd_log_trait"].values, dtype=float)[None, :] ** 2
     regressor = np.broadcast_to(regressor, np.broadcast_shapes(regressor.shape,
                                                                (1, n_species)))
