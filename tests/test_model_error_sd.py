@@ -19,7 +19,7 @@ from allolaw.model.error_sd import (
     replicate_variance_kernel,
     replicate_variance_logp,
 )
-from allolaw.model.spec import load_spec, parse_spec
+from allolaw.model.spec import describe_spec, load_spec, parse_spec
 from allolaw.testing import quick_sample, simulate_pooled
 from allolaw.testing.misspecified import simulate_correlated_errors
 from allolaw.testing.misspecified_study import interval_covers, score_fit
@@ -117,6 +117,23 @@ def test_estimated_error_sds_use_the_non_centred_forms():
     assert "true_log_size" not in free
     prior = build_model(sim.data, spec, levels=[], log_reference_size=0.0, prior_only=True)
     assert not prior.potentials  # prior draws: no replicate data, plain population form
+
+
+def test_methods_text_states_the_error_sd_model_and_its_priors():
+    text = describe_spec(parse_spec({"size_error": "replicates", "trait_error": "known",
+                                     "priors": {"error_sd_common": {"median": 0.2,
+                                                                    "log_sd": 1.0}}},
+                                    name="p"))
+    assert "normal(ln 0.2, 1)" in text
+    assert "half-normal(0.5)" in text
+    assert "chi-square with n − 1 degrees of freedom" in text
+    assert "one value takes its error SD from the pooled distribution" in text
+    assert "The trait's measurement-error variance of each species (SD given per species, " \
+        "taken as exact)" in text
+    assert "independent between replicates, between size and trait" in text
+    known = describe_spec(parse_spec({"size_error": "known"}, name="k"))
+    assert "chi-square" not in known
+    assert "taken as exact" in known
 
 
 # --- exact agreement of two replicates (the old failure) ------------------------------------

@@ -366,7 +366,9 @@ def _describe_errors(spec: ModelSpec) -> str:
             "is chi-square with n − 1 degrees of freedom, and the species mean has error SD "
             "true error SD / √n; a species with one value takes its error SD from the pooled "
             "distribution. Errors are assumed normal on the log scale and independent between "
-            "replicates, between size and trait, and of the species' true values."
+            "replicates, between size and trait, and of the species' true values. Where they "
+            "are not (e.g. a species value is a mean of individuals whose trait follows their "
+            "own size), the correction for size error overshoots the exponent."
         )
     return " ".join(parts) or "Size and trait are taken as measured without error."
 
