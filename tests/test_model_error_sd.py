@@ -106,6 +106,18 @@ def test_missing_replicate_columns_name_the_column():
         build_model(data, _pooled_spec(), levels=[], log_reference_size=0.0)
 
 
+def test_bad_replicate_count_or_variance_names_line_column_and_value():
+    sim = simulate_pooled(seed=6, n_species=8, size_error_sd=0.1, replicates=2)
+    data = sim.data.copy()
+    data.loc[2, "replicate_n_size"] = 0
+    with pytest.raises(UserError, match=r"line 4, column 'replicate_n_size', value 0"):
+        read_replicate_errors(data, "size", "p", "clean.csv")
+    data = sim.data.copy()
+    data.loc[5, "replicate_var_log_size"] = -0.1
+    with pytest.raises(UserError, match=r"line 7, column 'replicate_var_log_size', value -0.1"):
+        read_replicate_errors(data, "size", "p", "clean.csv")
+
+
 def test_estimated_error_sds_use_the_non_centred_forms():
     sim = simulate_pooled(seed=7, n_species=10, size_error_sd=0.1, trait_error_sd=0.05,
                           replicates=2)

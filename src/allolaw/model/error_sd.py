@@ -31,6 +31,7 @@ import numpy as np
 import pandas as pd
 import pymc as pm
 import pytensor.tensor as pt
+from scipy import special
 
 from allolaw.errors import UserError
 
@@ -88,10 +89,10 @@ def read_replicate_errors(data: pd.DataFrame, axis: str, spec_name: str,
         values = pd.to_numeric(data[var_col], errors="coerce").to_numpy(dtype=float)
         bad_n = estimated & ~(np.isfinite(counts) & (counts >= 1))
         bad_v = estimated & (counts >= 2) & ~(np.isfinite(values) & (values >= 0))
-        for bad, column, frame_col in ((bad_n, n_col, n_col), (bad_v, var_col, var_col)):
+        for bad, column in ((bad_n, n_col), (bad_v, var_col)):
             if bad.any():
                 row = int(np.flatnonzero(bad)[0])
-                value = data[frame_col].iloc[row]
+                value = data[column].iloc[row]
                 value = value.item() if hasattr(value, "item") else value
                 msg = (f"{source}: line {row + 2}, column '{column}', value {value!r}: "
                        "needs a replicate count ≥ 1 and, for two or more values, a variance ≥ 0")
@@ -110,7 +111,7 @@ def replicate_variance_logp(variance: Any, n: Any, sd: Any) -> Any:
     """
     k = n - 1.0
     lib = pt if isinstance(sd, pt.TensorVariable) else np
-    log_gamma = pt.gammaln if lib is pt else np.vectorize(math.lgamma)
+    log_gamma = pt.gammaln if lib is pt else special.gammaln
     return ((k / 2.0 - 1.0) * lib.log(variance) + (k / 2.0) * lib.log(k / (2.0 * sd**2))
             - k * variance / (2.0 * sd**2) - log_gamma(k / 2.0))
 
