@@ -390,6 +390,14 @@ def test_species_mean_of_logs_and_within_sd_match_hand_computation(tmp_path):
     assert c.loc["S a", "sd_source_size"] == "replicates"
     assert c.loc["S b", "within_sd_log_size"] == pytest.approx(0.2 / math.sqrt(2), rel=1e-9)
     assert c.loc["S a", "n_rows"] == 3
+    # replicate variance of the logs (ddof 1) and count: (ln 2)² and 3; 0.2²/2 and 2
+    assert c.loc["S a", "replicate_var_log_size"] == pytest.approx(math.log(2.0) ** 2, rel=1e-12)
+    assert c.loc["S a", "replicate_n_size"] == 3
+    assert c.loc["S b", "replicate_var_log_size"] == pytest.approx(0.02, rel=1e-9)
+    assert c.loc["S b", "replicate_var_log_trait"] == 0.0
+    assert c.loc["S b", "replicate_n_trait"] == 2
+    assert math.isnan(c.loc["S c", "replicate_var_log_size"])
+    assert c.loc["S c", "replicate_n_size"] == 1
     # Pooled within-species SD: sqrt(Σ (n−1) s² / Σ (n−1)) (pooled variance; e.g. Snedecor &
     # Cochran 1989, Statistical Methods, 8th ed., §6.9 — from memory).
     pooled = math.sqrt((2 * math.log(2.0) ** 2 + 1 * (0.2 / math.sqrt(2)) ** 2) / 3)
@@ -619,7 +627,9 @@ def test_demo_clean_tables_follow_the_contract(demo_results):
         assert list(clean.columns) == [
             "species", *levels, "log_size", "log_trait", "n_rows", "within_sd_log_size",
             "within_sd_log_trait", "sd_log_size", "sd_log_trait", "sd_source_size",
-            "sd_source_trait", *covariates, "source", "flag_outlier", "flag_singleton_taxon",
+            "sd_source_trait", "replicate_var_log_size", "replicate_n_size",
+            "replicate_var_log_trait", "replicate_n_trait", *covariates, "source",
+            "flag_outlier", "flag_singleton_taxon",
         ]
         assert clean["species"].is_unique
         # individuals have no replicates to take an SD from

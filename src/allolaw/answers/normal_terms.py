@@ -125,11 +125,28 @@ def law_pieces(idata: az.InferenceData, spec: dict[str, Any]) -> LawPieces | Non
         ref = scalar(const["log_size_ref"])
     else:
         ref = float(idata.attrs.get("log_reference_size", 0.0))
-    var = flat(post["sigma"])[:, None] ** 2
-    if "sd_log_trait" in const:
+    sd = _residual_sd(post, const)
+    if sd is None:
+        return None
+    var = sd**2
+    if "trait_error_sd_mean" in post:  # trait error SDs estimated (model/error_sd.py)
+        var = var + flat_matrix(post["trait_error_sd_mean"], "species") ** 2
+    elif "sd_log_trait" in const:
         var = var + np.asarray(const["sd_log_trait"].values, dtype=float).reshape(1, -1) ** 2
     return LawPieces(post=post, const=const, y=y, x=x, ref=ref,
                      inner=innermost_level(const), var=var)
+
+
+def _residual_sd(post: Any, const: Any) -> np.ndarray | None:
+    """Residual SD per draw, one column per species with scatter by taxon (model/scatter.py)."""
+    levels = [str(n).removeprefix("taxon_sigma__") for n in post.data_vars
+              if str(n).startswith("taxon_sigma__")]
+    if not levels:
+        return flat(post["sigma"])[:, None]
+    if len(levels) > 1 or f"taxon_index__{levels[0]}" not in const:
+        return None
+    index = np.asarray(const[f"taxon_index__{levels[0]}"].values, dtype=int)
+    return flat_matrix(post[f"taxon_sigma__{levels[0]}"], levels[0])[:, index]
 
 
 def innermost_level(const: Any) -> str | None:

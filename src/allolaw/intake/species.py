@@ -57,7 +57,9 @@ def aggregate_species(
     -------
     clean : DataFrame
         ``log_size``/``log_trait`` = mean of logs; ``within_sd_log_*`` = SD of logs between
-        replicates (ddof 1; NaN for one replicate); ``sd_log_*`` = SD of the species mean:
+        replicates (ddof 1; NaN for one replicate); ``replicate_var_log_*`` = their sample
+        variance (ddof 1; NaN for one replicate) and ``replicate_n_size``/``replicate_n_trait``
+        the number of values behind it; ``sd_log_*`` = SD of the species mean:
         ``given`` when every row has an SD (sqrt(Σ sdᵢ²)/n), else ``replicates`` (within SD /
         sqrt(n)) for n ≥ 2, else ``pooled`` (pooled within SD / sqrt(1)), else ``none`` (NaN)
         when no species of the dataset has two replicates.
@@ -81,6 +83,10 @@ def aggregate_species(
         col = f"log_{axis}"
         clean[col] = groups[col].mean()
         clean[f"within_sd_{col}"] = groups[col].std(ddof=1)
+        # the replicate variance and count, as the model reads them (a scaled chi-square
+        # given the species' true error variance; model/error_sd.py)
+        clean[f"replicate_var_{col}"] = groups[col].var(ddof=1)
+        clean[f"replicate_n_{axis}"] = clean["n_rows"]
         pooled[axis] = _pooled_sd(unflagged, col)
         pooled_sd = math.nan if pooled[axis]["sd"] is None else pooled[axis]["sd"]
         row_sd = rows[f"sd_log_{axis}_row"]
@@ -275,7 +281,8 @@ def order_clean(clean: pd.DataFrame, levels: list[str], covariates: list[str]) -
     columns = [
         "species", *levels, "log_size", "log_trait", "n_rows",
         "within_sd_log_size", "within_sd_log_trait", "sd_log_size", "sd_log_trait",
-        "sd_source_size", "sd_source_trait", *[f"cov_{c}" for c in covariates],
+        "sd_source_size", "sd_source_trait", "replicate_var_log_size", "replicate_n_size",
+        "replicate_var_log_trait", "replicate_n_trait", *[f"cov_{c}" for c in covariates],
         "source", "flag_outlier", "flag_singleton_taxon",
     ]
     return clean.sort_values([*levels, "species"], kind="stable")[columns].reset_index(drop=True)

@@ -25,6 +25,7 @@ import pymc as pm
 import pytensor.tensor as pt
 
 from allolaw.errors import UserError
+from allolaw.model.error_sd import species_error_sd
 from allolaw.model.inputs import read_inputs
 from allolaw.model.phylo_terms import ancestry_term
 from allolaw.model.scatter import scatter_level, scatter_term
@@ -88,11 +89,14 @@ def build_model(
     Notes
     -----
     Errors in size are modelled structurally: each species has a latent true log size, and
-    the measured log size is normal around it with the given SD, taken as exact (Carroll et
-    al. 2006, ch. 9; Richardson & Gilks 1993). The true log sizes follow a normal population
-    nested like the spec's taxon levels (:func:`~allolaw.model.terms.true_log_size`), one
-    normal population without taxon levels. With ``ratio`` errors (fixed ratio, no scatter
-    beyond measurement error) this is the Bayesian form of Deming regression (Deming 1943).
+    the measured log size is normal around it (Carroll et al. 2006, ch. 9; Richardson &
+    Gilks 1993) with an SD given per species and taken as exact, or, with ``replicates``
+    errors, an error SD estimated from the species' replicates and partially pooled
+    (:mod:`allolaw.model.error_sd`; the same for trait errors). The true log sizes follow a
+    normal population nested like the spec's taxon levels
+    (:func:`~allolaw.model.terms.true_log_size`), one normal population without taxon
+    levels. With ``ratio`` errors (fixed ratio, no scatter beyond measurement error) this
+    is the Bayesian form of Deming regression (Deming 1943).
     Taxon deviations are normal per level, the terms of one taxon correlated (LKJ prior, the
     default) or independent; their SDs and correlations describe the deviations at the data's
     centre size, so the reference size changes only how taxon intercepts are reported
@@ -148,7 +152,9 @@ def build_model(
                   for t in terms if t not in varying}
         sigma = residual_sd(spec)
         whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
-        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten)
+        sd_size, sd_estimated = _error_sd(inputs, "size", spec, prior_only)
+        size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten,
+                             sd_size=sd_size, sd_estimated=sd_estimated)
         if spec.size_error == "ratio":
             sigma = size.sigma
         scatter = scatter_level(spec, levels)  # scatter by taxon (model/scatter.py)
@@ -175,7 +181,7 @@ def build_model(
 
         total_sd = sigma
         if spec.trait_error in ("known", "replicates"):
-            sd_trait = pm.Data("sd_log_trait", inputs.sd_trait, dims="species")
+            sd_trait, _ = _error_sd(inputs, "trait", spec, prior_only)
             total_sd = pt.sqrt(sigma**2 + sd_trait**2)
 
         mu = offset
@@ -209,6 +215,18 @@ def build_model(
             pm.Normal(TRAIT, mu=mu, sigma=total_sd, observed=inputs.log_trait, dims="species")
     log.debug("built model %s (taxon terms %s, prior_only=%s)", spec.name, varying, prior_only)
     return model
+
+
+def _error_sd(inputs: Any, axis: str, spec: ModelSpec, prior_only: bool) -> tuple[Any, bool]:
+    # the error SD of each species' value on one axis: given, or estimated from replicates
+    mode = spec.size_error if axis == "size" else spec.trait_error
+    if mode not in ("known", "replicates"):
+        return None, False
+    errors = inputs.replicate_errors.get(axis)
+    given = inputs.sd_size if axis == "size" else inputs.sd_trait
+    sd = species_error_sd(axis, inputs.species, given, errors, spec.priors,
+                          observe=not prior_only)
+    return sd, errors is not None and bool(errors.estimated.any())
 
 
 def _varying_terms(spec: ModelSpec) -> list[str]:

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from allolaw.errors import UserError
+from allolaw.model.error_sd import ReplicateErrors, read_replicate_errors
 from allolaw.model.spec import ModelSpec
 
 __all__ = ["BOLTZMANN_EV_PER_K", "select_levels"]
@@ -65,6 +66,8 @@ class Inputs:
     sd_trait: np.ndarray | None = None
     taxa: dict[str, Taxa] = field(default_factory=dict)
     covariates: dict[str, np.ndarray] = field(default_factory=dict)
+    # per axis with `replicates` errors: which SDs are estimated, replicate variances, counts
+    replicate_errors: dict[str, ReplicateErrors] = field(default_factory=dict)
 
 
 def read_inputs(data: pd.DataFrame, spec: ModelSpec, *, levels: list[str]) -> Inputs:
@@ -99,9 +102,9 @@ def read_inputs(data: pd.DataFrame, spec: ModelSpec, *, levels: list[str]) -> In
         log_trait=data["log_trait"].to_numpy(dtype=float),
     )
     if spec.size_error in ("known", "replicates"):
-        inputs.sd_size = _error_sd(data, "size", spec, source)
+        inputs.sd_size = _error_sd(data, "size", spec, source, inputs)
     if spec.trait_error in ("known", "replicates"):
-        inputs.sd_trait = _error_sd(data, "trait", spec, source)
+        inputs.sd_trait = _error_sd(data, "trait", spec, source, inputs)
     parent_labels: pd.Series | None = None
     previous: str | None = None
     for level in used:
@@ -165,7 +168,8 @@ def _check_finite(data: pd.DataFrame, column: str, source: str) -> None:
         raise UserError(msg)
 
 
-def _error_sd(data: pd.DataFrame, axis: str, spec: ModelSpec, source: str) -> np.ndarray:
+def _error_sd(data: pd.DataFrame, axis: str, spec: ModelSpec, source: str,
+              inputs: Inputs) -> np.ndarray:
     column = f"sd_log_{axis}"
     mode = spec.size_error if axis == "size" else spec.trait_error
     sd = pd.to_numeric(data[column], errors="coerce").to_numpy(dtype=float)
@@ -182,20 +186,23 @@ def _error_sd(data: pd.DataFrame, axis: str, spec: ModelSpec, source: str) -> np
                     f"in the data for every species (use 'replicates' to accept other sources)"
                 )
                 raise UserError(msg)
-    bad = ~np.isfinite(sd) | (sd < 0)
+    estimated = np.zeros(sd.shape, dtype=bool)
+    if mode == "replicates":  # SDs not given are estimated (model/error_sd.py)
+        inputs.replicate_errors[axis] = read_replicate_errors(data, axis, spec.name, source)
+        estimated = inputs.replicate_errors[axis].estimated
+    # a given size SD of 0 would make the true size a point mass: refused, not floored
+    bad = ~estimated & (~np.isfinite(sd) | (sd < 0) | ((sd == 0) & (axis == "size")))
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
         value = _plain(data[column].iloc[row])
+        least = "> 0" if axis == "size" else "≥ 0"
         msg = (
             f"{source}: line {row + 2}, column '{column}', value {value!r}: "
-            f"model spec '{spec.name}' needs a measurement-error SD (≥ 0) for every species"
+            f"model spec '{spec.name}' needs a measurement-error SD ({least}) for every species"
+            + (" (an exact size needs size_error: none)" if axis == "size" else "")
         )
         raise UserError(msg)
-    if axis == "size":
-        # a zero SD makes the latent size a point mass; a floor of 1e-3 on the log scale
-        # (0.1 %) is far below any real measurement error (common practice, no source)
-        sd = np.maximum(sd, 1e-3)
-    return sd
+    return np.where(estimated, np.nan, sd)
 
 
 def _plain(value: Any) -> Any:

@@ -377,19 +377,41 @@ def _describe_errors(spec: ModelSpec) -> str:
         )
     parts = []
     if spec.size_error in ("known", "replicates"):
-        origin = "given per species" if spec.size_error == "known" else "from replicates"
         parts.append(
-            f"Size is measured with error (SD {origin}, taken as exact); the true log size of "
-            f"each species is a latent parameter. {population} The correction of the exponent "
-            "for measurement error in size holds as far as that population model and the "
-            "error SDs are right."
+            f"Size is measured with error ({_describe_error_sd(spec, 'size')}); the true log "
+            f"size of each species is a latent parameter. {population} The correction of the "
+            "exponent for measurement error in size holds as far as that population model and "
+            "the error SDs are right."
         )
     if spec.trait_error in ("known", "replicates"):
-        origin = "given per species" if spec.trait_error == "known" else "from replicates"
         parts.append(
-            f"The trait's measurement-error variance ({origin}) is added to the residual variance."
+            "The trait's measurement-error variance of each species "
+            f"({_describe_error_sd(spec, 'trait')}) is added to the residual variance."
+        )
+    if "replicates" in (spec.size_error, spec.trait_error):
+        common, spread = spec.priors["error_sd_common"], spec.priors["error_sd_spread"]
+        parts.append(
+            "An error SD estimated from replicates is a parameter of each species: the SD of "
+            "one replicate, log-normal around a common SD of the dataset (one per axis; the log "
+            f"of the common SD normal(ln {common['median']:g}, {common['log_sd']:g}), the SD of "
+            f"the log SDs across species half-normal({spread['sd']:g})). The sample variance "
+            "of a species' n replicate log values, times (n − 1) over the true error variance, "
+            "is chi-square with n − 1 degrees of freedom, and the species mean has error SD "
+            "true error SD / √n; a species with one value takes its error SD from the pooled "
+            "distribution. Errors are assumed normal on the log scale and independent between "
+            "replicates, between size and trait, and of the species' true values. Where they "
+            "are not (e.g. a species value is a mean of individuals whose trait follows their "
+            "own size), the correction for size error overshoots the exponent."
         )
     return " ".join(parts) or "Size and trait are taken as measured without error."
+
+
+def _describe_error_sd(spec: ModelSpec, axis: str) -> str:
+    mode = spec.size_error if axis == "size" else spec.trait_error
+    if mode == "known":
+        return "SD given per species, taken as exact"
+    return ("SD given per species taken as exact where the data give one; otherwise "
+            "estimated from the species' replicates, partially pooled")
 
 
 def _describe_size_population(spec: ModelSpec) -> str:

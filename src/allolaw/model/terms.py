@@ -12,6 +12,7 @@ import pymc as pm
 import pytensor.tensor as pt
 
 from allolaw.model.correlated import level_step
+from allolaw.model.error_sd import true_near_measured
 from allolaw.model.inputs import Inputs
 from allolaw.model.spec import ModelSpec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
@@ -39,12 +40,17 @@ def residual_sd(spec: ModelSpec) -> Any:
 
 
 def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_holder: Any,
-                  whiten: bool = True) -> _Size:
+                  whiten: bool = True, sd_size: Any = None, sd_estimated: bool = False,
+                  ) -> _Size:
     """The latent true log sizes (with errors in size) and, in ratio mode, the residual SD.
 
     With taxon levels in the spec, the true sizes follow a nested population mirroring the
     taxon tree (:func:`size_population`); without, one normal population (``size_mean``,
     ``size_sd``). ``whiten=False`` writes the plain non-centred form (prior draws).
+    ``sd_size``: the error SD of each species' measured log size (default: the constant
+    data ``sd_log_size``); ``sd_estimated``: it holds parameters
+    (:mod:`allolaw.model.error_sd`), so with ``whiten`` the true sizes are written around the
+    measured ones in units of that SD (:func:`~allolaw.model.error_sd.true_near_measured`).
     """
     if spec.size_error == "none":
         return _Size(value=log_size_obs, sigma=sigma_holder)
@@ -55,12 +61,18 @@ def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_h
     # spec fixes the prior (priors.size_population)
     population = spec.priors.get("size_population") or {
         "mean": float(np.mean(x)), "sd": 5.0 * spread, "sd_scale": 2.0 * spread}
+    near = sd_size if (whiten and sd_estimated) else None
     if inputs.taxa:
-        true = size_population(inputs, population, whiten=whiten)
+        true = size_population(inputs, population, whiten=whiten, near=near)
     else:
         size_mean = pm.Normal("size_mean", population["mean"], population["sd"])
         size_sd = pm.HalfNormal("size_sd", population["sd_scale"])
-        true = pm.Normal("true_log_size", size_mean, size_sd, dims="species")
+        if near is None:
+            true = pm.Normal("true_log_size", size_mean, size_sd, dims="species")
+        else:
+            true = true_near_measured(x, near)
+            pm.Potential("size_population_density",
+                         pt.sum(pm.logp(pm.Normal.dist(size_mean, size_sd), true)))
     if spec.size_error == "ratio":
         pri = spec.priors
         error_sd = pm.HalfNormal("size_error_sd", pri["size_error_sd"]["sd"])
@@ -70,12 +82,14 @@ def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_h
         sigma = pm.Deterministic("sigma", pt.sqrt(ratio) * error_sd)
         pm.Normal(SIZE_MEASUREMENT, true, error_sd, observed=x, dims="species")
         return _Size(value=true, sigma=sigma)
-    sd_size = pm.Data("sd_log_size", inputs.sd_size, dims="species")
+    if sd_size is None:
+        sd_size = pm.Data("sd_log_size", inputs.sd_size, dims="species")
     pm.Normal(SIZE_MEASUREMENT, true, sd_size, observed=x, dims="species")
     return _Size(value=true, sigma=sigma_holder)
 
 
-def size_population(inputs: Inputs, population: dict[str, float], *, whiten: bool) -> Any:
+def size_population(inputs: Inputs, population: dict[str, float], *, whiten: bool,
+                    near: Any = None) -> Any:
     """True log sizes in a nested population that mirrors the taxon tree; returns them.
 
     Each species' true log size is normal around its innermost taxon's size mean with SD
@@ -90,7 +104,8 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
     per node, ``size_mean_w``; potential ``size_tree_density``, which also holds the density
     of the true sizes given their taxon means). The free variable is then ``size_shift``,
     each true size minus its measured value (flat; the whole prior of the true sizes sits
-    in that potential). A single population would correct a
+    in that potential; with ``near``, estimated error SDs, it is ``size_error_u`` of
+    :func:`~allolaw.model.error_sd.true_near_measured`). A single population would correct a
     within-taxon slope with the total reliability of size instead of the within-taxon one
     when taxa sit at different places along the size axis (Carroll et al. 2006, ch. 3.3).
 
@@ -112,8 +127,11 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
     P = h = None
     if whiten:
         # free: the shift of each true size from its measured value (start: zero shift)
-        shift = pm.Flat("size_shift", dims="species")
-        true = pm.Deterministic("true_log_size", inputs.log_size + shift, dims="species")
+        if near is None:
+            shift = pm.Flat("size_shift", dims="species")
+            true = pm.Deterministic("true_log_size", inputs.log_size + shift, dims="species")
+        else:
+            true = true_near_measured(inputs.log_size, near)
         ones = pt.ones_like(true)
         P, h = leaf_information([ones], true, within**2 * ones, index, len(tree.depths[-1]))
     info, chol = pass_up(tree, step, P, h)

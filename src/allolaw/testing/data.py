@@ -329,7 +329,8 @@ def clean_frame(
         Rows per species; with it the SDs are marked as coming from replicates
         (``sd_source = replicates``), as ``allolaw prepare`` writes them, else ``given``.
     within
-        Replicate SDs of log size and log trait (the ``within_sd_*`` columns); NaN without.
+        Replicate SDs of log size and log trait (the ``within_sd_*`` columns, squared in
+        ``replicate_var_*``); NaN without.
     source
         Provenance kept in ``data.attrs["source"]``; ``source_label`` fills the ``source`` column.
     """
@@ -341,6 +342,9 @@ def clean_frame(
     def column(sd: np.ndarray | float | None) -> np.ndarray:
         return np.full(n, np.nan) if sd is None else np.broadcast_to(sd, (n,)).astype(float)
 
+    def within_sd(axis: int) -> np.ndarray:
+        return np.full(n, np.nan) if within is None else column(within[axis])
+
     def sd_source(sd: np.ndarray | float | None) -> str:
         if sd is None:
             return "none"
@@ -350,12 +354,17 @@ def clean_frame(
         log_size=np.asarray(log_size, dtype=float),
         log_trait=np.asarray(log_trait, dtype=float),
         n_rows=np.full(n, replicates or 1, dtype=int),
-        within_sd_log_size=np.full(n, np.nan) if within is None else column(within[0]),
-        within_sd_log_trait=np.full(n, np.nan) if within is None else column(within[1]),
+        within_sd_log_size=within_sd(0),
+        within_sd_log_trait=within_sd(1),
         sd_log_size=column(sd_log_size),
         sd_log_trait=column(sd_log_trait),
         sd_source_size=sd_source(sd_log_size),
         sd_source_trait=sd_source(sd_log_trait),
+        # replicate variances and counts, as ``allolaw prepare`` writes them (model/error_sd.py)
+        replicate_var_log_size=within_sd(0) ** 2,
+        replicate_n_size=np.full(n, replicates or 1, dtype=int),
+        replicate_var_log_trait=within_sd(1) ** 2,
+        replicate_n_trait=np.full(n, replicates or 1, dtype=int),
         source=source_label,
         flag_outlier=False,
         flag_singleton_taxon=False,
