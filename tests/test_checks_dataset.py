@@ -132,3 +132,18 @@ def test_fit_without_an_extension_record_writes_null(tmp_path, monkeypatch):
     check_dataset_model(config, "toy", "pooled")
     report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
     assert report["extension"] is None
+
+
+def test_warnings_of_the_fit_lead_the_check_findings(tmp_path, monkeypatch):
+    # the fit stage keeps its warnings (e.g. individuals fitted without a species term,
+    # model/within.py) in the posterior's attributes; the check shows them first
+    config = _config(tmp_path)
+    idata = line_posterior(seed=16)
+    warning = ("rows are individuals but the spec has no term at the species level: every "
+               "individual is treated as an independent observation")
+    idata.attrs["warnings"] = json.dumps([warning])
+    _write_fit(config, idata)
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    check_dataset_model(config, "toy", "pooled")
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["findings"][0] == warning
