@@ -251,3 +251,47 @@ def test_lighter_jax_rewrites_leave_the_log_density_and_gradient_unchanged() -> 
     plain = pytensor.function(model.value_vars, outputs, mode=unrewritten)(*values)
     for a, b in zip(fast, plain, strict=True):
         np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-9, atol=1e-9)
+
+
+_CACHE_SCRIPT = """
+import sys
+import numpy as np
+import pymc as pm
+from allolaw.model.sampling import fit_model
+
+n = int(sys.argv[1])
+rng = np.random.default_rng(3)
+x = rng.normal(0.0, 1.0, n)
+y = 0.4 + 0.75 * x + rng.normal(0.0, 0.3, n)
+with pm.Model(coords={"species": [f"sp{i}" for i in range(n)]}) as model:
+    log_size_obs = pm.Data("log_size_obs", x, dims="species")
+    intercept = pm.Normal("intercept", 0.0, 2.0)
+    exponent = pm.Normal("exponent", 0.0, 2.0)
+    sigma = pm.HalfNormal("sigma", 1.0)
+    pm.Normal("trait", intercept + exponent * log_size_obs, sigma, observed=y, dims="species")
+idata = fit_model(model, chains=2, draws=100, warmup=100, threads=1, prior_draws=20, seed=5)
+print(idata.attrs["compile_cache"])
+"""
+
+
+@pytest.mark.mcmc
+def test_fit_of_the_same_structure_reuses_the_compiled_programs_and_says_so(tmp_path):
+    # each fit in its own process, as in a batch: JAX reads its cache folder at import
+    import os
+    import subprocess
+    import sys
+
+    env = {**os.environ, "JAX_COMPILATION_CACHE_DIR": str(tmp_path / "jax"),
+           "JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS": "0",  # as runtime.configure_job sets
+           "PYTHONPATH": os.pathsep.join([str(REPO / "src"), os.environ.get("PYTHONPATH", "")])}
+    (tmp_path / "jax").mkdir()
+
+    def fit(n: int) -> str:
+        done = subprocess.run([sys.executable, "-c", _CACHE_SCRIPT, str(n)], env=env,
+                              capture_output=True, text=True, check=True, timeout=600)
+        return done.stdout.strip().splitlines()[-1]
+
+    first, again, other = fit(30), fit(30), fit(45)
+    assert "new program(s) compiled" in first
+    assert again.startswith("JAX compile cache hit")
+    assert "new program(s) compiled" in other  # other data shapes: other programs

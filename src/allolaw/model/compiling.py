@@ -6,6 +6,7 @@ The choices are measured on the project machine (see ``benchmarks/README.md``).
 from __future__ import annotations
 
 import os
+from pathlib import Path
 
 from allolaw.runtime import LIGHTER_REWRITES
 
@@ -55,3 +56,27 @@ def apply_jax_cache() -> None:
     if cache_dir and jax.config.jax_compilation_cache_dir != cache_dir:
         jax.config.update("jax_compilation_cache_dir", cache_dir)
         jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
+
+
+def jax_cache_programs() -> set[str] | None:
+    """Names of the compiled programs in the JAX persistent cache (``None``: no cache set).
+
+    JAX writes one ``<name>-<key>-cache`` file per compiled program, keyed by the program's
+    text and the compile options, so a fit whose functions have the same structure as an
+    earlier fit's (same spec, same data shapes) finds its programs there and writes none.
+    Comparing the names before and after a fit tells a cache hit from a miss.
+    """
+    cache_dir = os.environ.get("JAX_COMPILATION_CACHE_DIR")
+    if not cache_dir or not Path(cache_dir).is_dir():
+        return None
+    return {p.name for p in Path(cache_dir).iterdir() if p.name.endswith("-cache")}
+
+
+def describe_cache_use(before: set[str] | None, after: set[str] | None) -> str:
+    """One phrase for the fit log: how many programs the fit added to the JAX cache."""
+    if before is None or after is None:
+        return "no JAX compile cache set"
+    new = len(after - before)
+    if new == 0:
+        return f"JAX compile cache hit: every program came from the cache ({len(after)} there)"
+    return f"JAX compile cache: {new} new program(s) compiled and stored ({len(after)} there)"

@@ -35,6 +35,8 @@ from allolaw.model.compiling import (
     NUTPIE_COMPILE,
     PREDICTIVE_COMPILE,
     apply_jax_cache,
+    describe_cache_use,
+    jax_cache_programs,
     lighter_jax_rewrites,
     per_draw_compile,
 )
@@ -134,6 +136,7 @@ def fit_model(
         chosen, chains, warmup, draws, threads, seed,
     )
     keep_state = extension_draws > 0
+    cached_before = jax_cache_programs()
     try:
         idata, compile_s, sampling_s, state = _sample(
             model, chosen, chains=chains, draws=draws, warmup=warmup,
@@ -162,6 +165,8 @@ def fit_model(
 
     predictive_s = _add_predictive_groups(idata, model, prior_model=prior_model, seeds=seeds,
                                           prior_draws=prior_draws)
+    cache_use = describe_cache_use(cached_before, jax_cache_programs())
+    log.info("fit: %s", cache_use)
 
     idata.attrs.update(
         {
@@ -175,6 +180,7 @@ def fit_model(
             "chain_extension": json.dumps(extension, sort_keys=True),
             "extension_seconds": round(extension_s, 3),
             "predictive_seconds": round(predictive_s, 3),
+            "compile_cache": cache_use,
             "wall_seconds": round(time.perf_counter() - wall_start, 3),
         }
     )
