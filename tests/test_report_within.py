@@ -123,3 +123,14 @@ def test_section_is_none_when_headline_says_not_applicable():
     head = {"within_between": {"applicable": False, "reason": "no split"}}
     assert within_section(head, "m") is None
     assert within_section(None, "m") is None
+
+
+def test_contents_bar_links_the_within_section_only_when_there_is_one(pages):
+    plain, split, _ = pages
+    for html in (plain, split):
+        nav = re.search(r'<nav class="toc">(.*?)</nav>', html, re.S).group(1)
+        targets = re.findall(r'href="#([^"]+)"', nav)
+        ids = set(re.findall(r'\bid="([^"]+)"', html))
+        assert set(targets) <= ids  # every link of the contents bar lands on the page
+    assert 'href="#within-paragraph"' in split
+    assert 'href="#within-paragraph"' not in plain
