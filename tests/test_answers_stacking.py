@@ -128,3 +128,29 @@ def test_a_different_top_named_value_disagrees():
                           averaged_probs={"3/4": 0.3, "2/3": 0.6})
     assert out.disagree
     assert "most probable value is 3/4" in out.sentence
+
+
+def test_average_leaves_out_models_whose_exponent_is_another_quantity():
+    # a within/between split puts the between-species slope in `exponent`; a model without
+    # the split has one slope for both (invented draws, known by construction)
+    import pandas as pd
+
+    from allolaw.answers.verdicts import headline_block
+
+    rng = np.random.default_rng(4)
+
+    def fit(centre: float, split: bool) -> az.InferenceData:
+        const = {"log_size_obs": np.zeros(3)}
+        if split:
+            const["within_log_size"] = np.zeros(3)
+        return az.from_dict(posterior={"exponent": rng.normal(centre, 0.05, (2, 200))},
+                            constant_data=const)
+
+    fits = {"within": fit(2.7, True), "together": fit(2.0, False),
+            "within_b": fit(2.72, True)}
+    block = headline_block(fits, pd.DataFrame(), primary="within",
+                           weights={"within": 0.5, "together": 0.3, "within_b": 0.2})
+    assert block["left_out"] == ["together"]
+    assert set(block["averaged_exponent"]["draws_by_model"]) == {"within", "within_b"}
+    assert block["averaged_exponent"]["q05"] > 2.5  # with the 2.0 draws (weight 0.3) it is ~2.0
+    assert "'together'" in block["sentence"]

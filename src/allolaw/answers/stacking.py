@@ -215,7 +215,7 @@ def judge_agreement(
         sentence = ("The headline model and the average over models disagree: "
                     + "; ".join(reasons) + f" (stacking weights {shares}).")
     else:
-        sentence = (f"The headline model agrees with the average over models: exponent "
+        sentence = (f"The headline model agrees with the average over models: posterior mean "
                     f"{mean:.3f} against {averaged.mean:.3f} averaged (90% interval "
                     f"{averaged.q05:.3f} to {averaged.q95:.3f}; stacking weights {shares}).")
     if not math.isfinite(mean):

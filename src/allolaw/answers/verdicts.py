@@ -160,7 +160,9 @@ def headline_block(
     dict
         ``stacking_weights``, ``averaged_exponent {mean, weighted_mean, q05, median, q95,
         draws_by_model}``, ``primary_exponent {mean, q05, median, q95}``, ``averaged_probs``,
-        ``primary_probs``, ``disagree``, ``reasons``, ``sentence``.
+        ``primary_probs``, ``disagree``, ``reasons``, ``sentence``, ``left_out`` (models
+        whose ``exponent`` is another quantity than the primary's: with and without a
+        within/between split).
 
     References
     ----------
@@ -172,6 +174,12 @@ def headline_block(
     weights = dict(weights) if weights is not None else stack_fits(fits).as_dict()
     draws = {m: np.asarray(f.posterior["exponent"].values, dtype=float).reshape(-1)
              for m, f in fits.items() if "exponent" in f.posterior}
+    # a model that splits within- from between-species slopes (model/within.py) has the
+    # between-species exponent in `exponent`; one without the split has one slope for both:
+    # another quantity, so the average takes only the models of the primary's kind
+    other_kind = sorted(m for m in draws if primary in fits
+                        and _splits_within(fits[m]) != _splits_within(fits[primary]))
+    draws = {m: d for m, d in draws.items() if m not in other_kind}
     probs = _named_probs(hyp)
     out: dict[str, Any] = {"applicable": True, "stacking_weights": weights,
                            "note": ("stacking weights are weights of the best predictive "
@@ -196,8 +204,19 @@ def headline_block(
                                "q05": float(q05), "median": float(q50), "q95": float(q95)}
     out["averaged_probs"] = avg_probs
     out["primary_probs"] = probs.get(primary)
-    out.update(disagree=agree.disagree, reasons=list(agree.reasons), sentence=agree.sentence)
+    sentence = agree.sentence
+    if other_kind:
+        sentence += (" Left out of the average, as their exponent is another quantity (one "
+                     "slope for rows within and between species, or the reverse): "
+                     + ", ".join(f"'{m}'" for m in other_kind) + ".")
+    out.update(disagree=agree.disagree, reasons=list(agree.reasons), sentence=sentence,
+               left_out=other_kind)
     return out
+
+
+def _splits_within(idata: az.InferenceData) -> bool:
+    const = getattr(idata, "constant_data", None)
+    return const is not None and "within_log_size" in const
 
 
 def sensitivity_block(idata: az.InferenceData, spec: Any, settings: Mapping[str, Any]
