@@ -6,7 +6,6 @@ The choices are measured on the project machine (see ``benchmarks/README.md``).
 from __future__ import annotations
 
 import os
-from pathlib import Path
 
 from allolaw.runtime import LIGHTER_REWRITES
 
@@ -58,25 +57,47 @@ def apply_jax_cache() -> None:
         jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
 
 
-def jax_cache_programs() -> set[str] | None:
-    """Names of the compiled programs in the JAX persistent cache (``None``: no cache set).
 
-    JAX writes one ``<name>-<key>-cache`` file per compiled program, keyed by the program's
-    text and the compile options, so a fit whose functions have the same structure as an
-    earlier fit's (same spec, same data shapes) finds its programs there and writes none.
-    Comparing the names before and after a fit tells a cache hit from a miss.
+# Persistent-cache events of this process, counted by a jax.monitoring listener: per fit,
+# unlike the cache folder, which other jobs of the batch write to at the same time.
+_CACHE_EVENTS = {"/jax/compilation_cache/cache_hits": "hits",
+                 "/jax/compilation_cache/cache_misses": "compiled"}
+_cache_counts = {"hits": 0, "compiled": 0}
+_listening = False
+
+
+def _count_cache_event(event: str, **_: object) -> None:
+    key = _CACHE_EVENTS.get(event)
+    if key is not None:
+        _cache_counts[key] += 1
+
+
+def jax_cache_counts() -> dict[str, int] | None:
+    """Programs this process took from the JAX persistent cache and compiled into it so far.
+
+    ``None`` when no cache folder is set (``runtime.configure_job`` sets one for every job).
+    JAX keys each program by its text and compile options, so a fit whose functions have the
+    same structure and data shapes as an earlier fit's finds them there. Call once before a
+    fit (it starts the count) and once after; the difference is the fit's.
     """
-    cache_dir = os.environ.get("JAX_COMPILATION_CACHE_DIR")
-    if not cache_dir or not Path(cache_dir).is_dir():
+    global _listening
+    if not os.environ.get("JAX_COMPILATION_CACHE_DIR"):
         return None
-    return {p.name for p in Path(cache_dir).iterdir() if p.name.endswith("-cache")}
+    if not _listening:
+        import jax.monitoring
+
+        jax.monitoring.register_event_listener(_count_cache_event)
+        _listening = True
+    return dict(_cache_counts)
 
 
-def describe_cache_use(before: set[str] | None, after: set[str] | None) -> str:
-    """One phrase for the fit log: how many programs the fit added to the JAX cache."""
+def describe_cache_use(before: dict[str, int] | None, after: dict[str, int] | None) -> str:
+    """One phrase for the fit log: the fit's programs from the JAX cache and compiled."""
     if before is None or after is None:
         return "no JAX compile cache set"
-    new = len(after - before)
-    if new == 0:
-        return f"JAX compile cache hit: every program came from the cache ({len(after)} there)"
-    return f"JAX compile cache: {new} new program(s) compiled and stored ({len(after)} there)"
+    hits = after["hits"] - before["hits"]
+    compiled = after["compiled"] - before["compiled"]
+    if compiled == 0 and hits > 0:
+        return f"JAX compile cache hit: all {hits} program(s) came from the cache"
+    return (f"JAX compile cache: {hits} program(s) from the cache, {compiled} compiled and "
+            "stored")

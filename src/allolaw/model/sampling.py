@@ -36,7 +36,7 @@ from allolaw.model.compiling import (
     PREDICTIVE_COMPILE,
     apply_jax_cache,
     describe_cache_use,
-    jax_cache_programs,
+    jax_cache_counts,
     lighter_jax_rewrites,
     per_draw_compile,
 )
@@ -136,7 +136,7 @@ def fit_model(
         chosen, chains, warmup, draws, threads, seed,
     )
     keep_state = extension_draws > 0
-    cached_before = jax_cache_programs()
+    cached_before = jax_cache_counts()
     try:
         idata, compile_s, sampling_s, state = _sample(
             model, chosen, chains=chains, draws=draws, warmup=warmup,
@@ -165,7 +165,7 @@ def fit_model(
 
     predictive_s = _add_predictive_groups(idata, model, prior_model=prior_model, seeds=seeds,
                                           prior_draws=prior_draws)
-    cache_use = describe_cache_use(cached_before, jax_cache_programs())
+    cache_use = describe_cache_use(cached_before, jax_cache_counts())
     log.info("fit: %s", cache_use)
 
     idata.attrs.update(
