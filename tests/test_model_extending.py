@@ -63,6 +63,20 @@ def test_short_run_with_extension_off_says_so():
     assert "extension_draws is 0" in record["reason"]
 
 
+def test_low_rank_fit_without_its_unconstrained_draws_is_reported_not_extended():
+    idata = _iid(2, 50, seed=5, shift=3.0)
+    # nutpie's low-rank part in use, but the posterior lacks the value variable mu_log__
+    state = AdaptedState(value_vars=("mu_log__",), inverse_mass=np.ones((2, 1)),
+                         step_size=np.array([0.5, 0.5]), low_rank_left_out=np.array([0, 2]))
+    out, record = extend_if_short(None, idata, state, extra_draws=50, seed=1,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert out is idata
+    assert record["status"] == "not available"
+    assert "low-rank part in 2 direction(s)" in record["reason"]
+    assert "unconstrained draws" in record["reason"]
+    assert record["low_rank_directions_left_out"] == [0, 2]
+
+
 def test_regularised_covariance_matches_stans_formula():
     # Stan's metric regularisation: (n/(n+5))·S + 1e-3·(5/(n+5))·I with S the sample
     # covariance (divisor n − 1) (stan-dev/stan src/stan/mcmc/covar_adaptation.hpp; Stan
@@ -197,6 +211,30 @@ def test_extended_draws_sample_the_closed_form_posterior():
     assert draws.std() == pytest.approx(s, rel=0.1)
     # the adapted step size was used as it was, not re-tuned
     np.testing.assert_allclose(added["step_size"].values[:, 0], state.step_size, rtol=1e-9)
+
+
+@pytest.mark.mcmc
+def test_each_chain_samples_the_closed_form_posterior_with_its_own_diagonal():
+    import dataclasses
+
+    from allolaw.model.extending import extend_chains
+    from allolaw.model.sampling import _sample
+
+    model = _model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=50, warmup=300,
+                                 target_acceptance=0.9, seed=5, threads=1, progress=False,
+                                 keep_state=True)
+    # chain 1: inverse mass 25 times chain 0's and a step a fifth as long (the same motion).
+    # Were chain 1's momentum drawn from its own matrix but its energy taken from chain 0's,
+    # its draws would have the wrong spread (measured: SD 0.046 against 0.224).
+    d, e = state.inverse_mass[0], state.step_size[0]
+    skewed = dataclasses.replace(state, inverse_mass=np.stack([d, 25 * d]),
+                                 step_size=np.array([e, e / 5]))
+    out, _ = extend_chains(model, idata, skewed, extra_draws=1000, seeds=[1, 2],
+                           target_acceptance=0.9)
+    _, s = _closed_form()
+    for chain in out.posterior["mu"].values[:, 50:]:
+        assert chain.std() == pytest.approx(s, rel=0.15)
 
 
 @pytest.mark.mcmc

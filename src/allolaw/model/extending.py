@@ -322,6 +322,7 @@ def _run_one_chain(model: Any, idata: Any, metric: ChainMetric, c: int, step: An
     from pymc.step_methods.step_sizes import DualAverageAdaptation
 
     step.potential = metric.potential(c)
+    # the integrator keeps the potential it was built with: give it this chain's
     step.integrator = type(step.integrator)(step.potential, step._logp_dlogp_func)
     step.step_adapt = DualAverageAdaptation(float(metric.step_size[c]), step.target_accept,
                                             0.05, 0.75, 10)  # PyMC's defaults
