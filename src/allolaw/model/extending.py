@@ -179,8 +179,11 @@ def extend_if_short(
         diverged more often than the first run, so they were dropped), ``reason``, ``backend``,
         ``extra_draws_per_chain``, ``draws_per_chain_before``/``_after``, ``before`` and
         ``after`` (worst R-hat, smallest bulk and tail ESS), ``thresholds`` and, when
-        extended, ``step_size``, ``low_rank_directions_left_out``, ``divergences`` and
-        ``mean_acceptance`` of the added draws and ``seeds``.
+        extended or discarded, ``mass_matrix`` (``adapted diagonal``, ``draws' covariance
+        (dense)`` or ``draws' variances (diagonal)``), ``unconstrained_values``,
+        ``step_size_tuning_steps``, ``step_size`` (per chain, of the added draws),
+        ``low_rank_directions_left_out``, ``divergences`` and ``mean_acceptance`` of the
+        added draws and ``seeds``.
     """
     before = convergence_numbers(idata.posterior)
     n_draws = int(idata.posterior.sizes["draw"])
