@@ -21,7 +21,10 @@ from PyMC's NUTS given a fixed mass matrix and the chain's last position. Which 
   a demo model), the regularised covariance of the fit's draws in the unconstrained space,
   pooled over chains (dense up to ``DENSE_MAX`` values); the step size is tuned again for
   ``STEP_TUNING_STEPS`` steps from each chain's last draw with that matrix fixed, and those
-  tuning draws are thrown away.
+  tuning draws are thrown away. Measured on the demo's island_metabolism/taxa_errors (4
+  chains × 300 warm-up + 300 draws, seed 20261202): 572 unconstrained values, dense matrix,
+  no divergences, worst R-hat 1.018 → 1.010, smallest bulk ESS 217 → 686; the extension (PyMC's
+  NUTS, chains one after another) took about 6.6 min where nutpie's fit took 48 s.
 
 ``pymc`` and ``numpyro`` (through ``pm.sample``) do not hand their adapted state back, so their
 chains are not extended: the record says so and the check reports the fit as it is.
