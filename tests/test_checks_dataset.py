@@ -125,6 +125,28 @@ def test_chain_extension_of_the_fit_is_copied_into_the_check_json(tmp_path, monk
     assert "250.0 → 520.0" in report["findings"][0]
 
 
+def test_extension_with_a_mass_matrix_from_the_draws_is_named_in_the_finding(
+        tmp_path, monkeypatch):
+    config = _config(tmp_path)
+    idata = line_posterior(seed=16)
+    record = {"status": "extended", "reason": "smallest bulk ESS 120 below 400",
+              "backend": "nutpie", "extra_draws_per_chain": 300,
+              "draws_per_chain_before": 300, "draws_per_chain_after": 600,
+              "before": {"rhat": 1.02, "ess_bulk": 120.0, "ess_tail": 200.0},
+              "after": {"rhat": 1.006, "ess_bulk": 410.0, "ess_tail": 500.0},
+              "mass_matrix": "draws' covariance (dense)", "step_size_tuning_steps": 200}
+    idata.attrs["chain_extension"] = json.dumps(record)
+    _write_fit(config, idata)
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    check_dataset_model(config, "toy", "pooled")
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert report["extension"]["mass_matrix"] == "draws' covariance (dense)"
+    finding = report["findings"][0]
+    assert "draws' covariance (dense)" in finding
+    assert "tuned again over 200 steps" in finding
+    assert "no new warm-up" not in finding
+
+
 def test_fit_without_an_extension_record_writes_null(tmp_path, monkeypatch):
     config = _config(tmp_path)
     _write_fit(config, line_posterior(seed=15))

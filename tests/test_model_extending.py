@@ -63,16 +63,63 @@ def test_short_run_with_extension_off_says_so():
     assert "extension_draws is 0" in record["reason"]
 
 
-def test_short_run_with_a_low_rank_mass_matrix_part_is_not_extended():
+def test_low_rank_fit_without_its_unconstrained_draws_is_reported_not_extended():
     idata = _iid(2, 50, seed=5, shift=3.0)
-    state = AdaptedState(value_vars=("mu",), inverse_mass=np.ones((2, 1)),
+    # nutpie's low-rank part in use, but the posterior lacks the value variable mu_log__
+    state = AdaptedState(value_vars=("mu_log__",), inverse_mass=np.ones((2, 1)),
                          step_size=np.array([0.5, 0.5]), low_rank_left_out=np.array([0, 2]))
     out, record = extend_if_short(None, idata, state, extra_draws=50, seed=1,
                                   backend="nutpie", target_acceptance=0.9)
     assert out is idata
     assert record["status"] == "not available"
     assert "low-rank part in 2 direction(s)" in record["reason"]
+    assert "unconstrained draws" in record["reason"]
     assert record["low_rank_directions_left_out"] == [0, 2]
+
+
+def test_regularised_covariance_matches_stans_formula():
+    # Stan's metric regularisation: (n/(n+5))·S + 1e-3·(5/(n+5))·I with S the sample
+    # covariance (divisor n − 1) (stan-dev/stan src/stan/mcmc/covar_adaptation.hpp; Stan
+    # Reference Manual, HMC automatic parameter tuning); numpy's np.cov as the reference S.
+    from allolaw.model.mass_matrix import regularised_covariance
+
+    draws = np.random.default_rng(3).normal(size=(30, 3)) @ np.array(
+        [[1.0, 0.5, 0.0], [0.0, 2.0, 0.3], [0.0, 0.0, 0.1]])
+    n = 30
+    s = np.cov(draws.T)  # ddof 1
+    expected = n / (n + 5) * s + 1e-3 * 5 / (n + 5) * np.eye(3)
+    np.testing.assert_allclose(regularised_covariance(draws), expected, rtol=1e-12)
+    np.testing.assert_allclose(regularised_covariance(draws, dense=False), np.diag(expected),
+                               rtol=1e-12)
+    # a value fixed in every draw still gets a positive variance: 1e-3·5/(n+5)
+    fixed = np.column_stack([draws[:, 0], np.zeros(n)])
+    assert regularised_covariance(fixed)[1, 1] == pytest.approx(1e-3 * 5 / 35, rel=1e-12)
+
+
+def test_mass_matrix_from_draws_is_dense_up_to_its_limit_and_diagonal_beyond():
+    from allolaw.model.mass_matrix import (
+        MASS_DENSE,
+        MASS_DIAGONAL,
+        mass_matrix_from_draws,
+        regularised_covariance,
+    )
+
+    rng = np.random.default_rng(4)
+    post = az.from_dict(posterior={"a_log__": rng.normal(size=(2, 50)),
+                                   "b": rng.normal(size=(2, 50, 3))}).posterior
+    steps = np.array([0.3, 0.4])
+    dense = mass_matrix_from_draws(post, ("a_log__", "b"), steps)
+    # pooled over chains, value variables in the sampler's order, each flattened
+    pooled = np.column_stack([post["a_log__"].values.reshape(100),
+                              post["b"].values.reshape(100, 3)])
+    assert dense.kind == MASS_DENSE
+    np.testing.assert_allclose(dense.inverse_mass, regularised_covariance(pooled))
+    diag = mass_matrix_from_draws(post, ("a_log__", "b"), steps, dense_max=3)
+    assert diag.kind == MASS_DIAGONAL
+    assert diag.inverse_mass.shape == (2, 4)
+    np.testing.assert_allclose(diag.inverse_mass[1], regularised_covariance(pooled, dense=False))
+    # a value variable the fit did not store: no matrix
+    assert mass_matrix_from_draws(post, ("a_log__", "c"), steps) is None
 
 
 def test_convergence_numbers_leave_out_fixed_values_and_match_arviz():
@@ -167,6 +214,30 @@ def test_extended_draws_sample_the_closed_form_posterior():
 
 
 @pytest.mark.mcmc
+def test_each_chain_samples_the_closed_form_posterior_with_its_own_diagonal():
+    import dataclasses
+
+    from allolaw.model.extending import extend_chains
+    from allolaw.model.sampling import _sample
+
+    model = _model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=50, warmup=300,
+                                 target_acceptance=0.9, seed=5, threads=1, progress=False,
+                                 keep_state=True)
+    # chain 1: inverse mass 25 times chain 0's and a step a fifth as long (the same motion).
+    # Were chain 1's momentum drawn from its own matrix but its energy taken from chain 0's,
+    # its draws would have the wrong spread (measured: SD 0.046 against 0.224).
+    d, e = state.inverse_mass[0], state.step_size[0]
+    skewed = dataclasses.replace(state, inverse_mass=np.stack([d, 25 * d]),
+                                 step_size=np.array([e, e / 5]))
+    out, _ = extend_chains(model, idata, skewed, extra_draws=1000, seeds=[1, 2],
+                           target_acceptance=0.9)
+    _, s = _closed_form()
+    for chain in out.posterior["mu"].values[:, 50:]:
+        assert chain.std() == pytest.approx(s, rel=0.15)
+
+
+@pytest.mark.mcmc
 def test_extension_that_diverges_is_discarded_and_the_fit_kept():
     import dataclasses
 
@@ -185,3 +256,59 @@ def test_extension_that_diverges_is_discarded_and_the_fit_kept():
     assert out is idata
     assert out.posterior.sizes["draw"] == 40
     assert record["draws_per_chain_after"] == 40
+
+
+# A correlated 5-D normal (invented mean and covariance) beside a log-normal scale: the target
+# is the model itself, so its moments are known in closed form: x ~ N(_MEAN, _COV) and
+# log s ~ N(0, 0.5²).
+_MEAN = np.array([0.0, 1.0, 2.0, 3.0, 4.0])
+_SD = np.array([1.0, 2.0, 1.0, 0.5, 3.0])
+_COV = np.array([[1.0, 0.9, 0.5, 0.0, 0.2], [0.9, 1.0, 0.6, 0.1, 0.2],
+                 [0.5, 0.6, 1.0, 0.3, 0.0], [0.0, 0.1, 0.3, 1.0, -0.4],
+                 [0.2, 0.2, 0.0, -0.4, 1.0]]) * np.outer(_SD, _SD)
+
+
+def _correlated_model():
+    import pymc as pm
+
+    with pm.Model() as model:
+        pm.MvNormal("x", mu=_MEAN, cov=_COV)
+        pm.LogNormal("s", 0.0, 0.5)
+    return model
+
+
+def _within_mcse(draws, truth, k=4.0):
+    # |mean − truth| < k MCSE, the MCSE from ArviZ (Vehtari et al. 2021) over both chains
+    mcse = float(az.mcse(az.from_dict(posterior={"v": draws}))["v"])
+    return abs(float(draws.mean()) - truth) < k * mcse
+
+
+@pytest.mark.mcmc
+def test_short_low_rank_fit_is_extended_with_the_draws_covariance_and_samples_the_target():
+    from allolaw.model.mass_matrix import MASS_DENSE
+    from allolaw.model.sampling import _sample
+
+    model = _correlated_model()
+    idata, _, _, state = _sample(model, "nutpie", chains=2, draws=40, warmup=200,
+                                 target_acceptance=0.9, seed=3, threads=1, progress=False,
+                                 keep_state=True)
+    assert state.low_rank_left_out.max() > 0  # nutpie's low-rank part was in use
+    out, record = extend_if_short(model, idata, state, extra_draws=1000, seed=3,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert record["status"] == "extended"
+    assert record["mass_matrix"] == MASS_DENSE
+    assert record["unconstrained_values"] == 6
+    assert record["step_size_tuning_steps"] == 200
+    assert len(record["step_size"]) == 2
+    assert out.posterior["x"].sizes["draw"] == 1040
+    # the added draws (tuning draws thrown away) follow the closed-form target
+    x = out.posterior["x"].values[:, 40:]
+    assert x.shape == (2, 1000, 5)
+    for i in range(5):
+        assert _within_mcse(x[..., i], _MEAN[i])
+        for j in range(i, 5):
+            products = (x[..., i] - _MEAN[i]) * (x[..., j] - _MEAN[j])
+            assert _within_mcse(products, _COV[i, j]), (i, j)
+    log_s = np.log(out.posterior["s"].values[:, 40:])
+    assert _within_mcse(log_s, 0.0)
+    assert _within_mcse(log_s ** 2, 0.25)

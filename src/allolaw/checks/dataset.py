@@ -130,11 +130,22 @@ def _extension_finding(ext: dict[str, Any]) -> str:
     if ext["status"] == "extended":
         return (f"R-hat or ESS fell short after {ext['draws_per_chain_before']} draws per chain "
                 f"({ext['reason']}); every chain was run {ext['extra_draws_per_chain']} draws "
-                "further from its adapted step size and mass matrix, no new warm-up. Worst "
+                f"further from its last draw{_extension_how(ext)}. Worst "
                 f"R-hat {before['rhat']} → {after['rhat']}, smallest bulk ESS "
                 f"{before['ess_bulk']} → {after['ess_bulk']}, smallest tail ESS "
                 f"{before['ess_tail']} → {after['ess_tail']}.")
     return f"The chains were not extended: {ext['reason']}."
+
+
+def _extension_how(ext: dict[str, Any]) -> str:
+    # records made before the mass_matrix key: the adapted step size and mass matrix
+    kind = ext.get("mass_matrix", "adapted diagonal")
+    tuning = int(ext.get("step_size_tuning_steps", 0))
+    if kind == "adapted diagonal" and not tuning:
+        return " with its adapted step size and mass matrix, no new warm-up"
+    return (f" with a fixed mass matrix from the fit's draws ({kind}; nutpie's adapted one "
+            f"has a low-rank part it does not hand back) and the step size tuned again over "
+            f"{tuning} steps, which were thrown away")
 
 
 def _refit_numbers(result: CheckResult) -> dict[str, Any]:
