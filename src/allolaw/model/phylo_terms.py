@@ -13,6 +13,9 @@ draw (:func:`allolaw.phylogeny.loo_log_density`) into ``log_likelihood["trait"]`
 the model on the same footing as models with independent residuals when compared by LOO
 (Bürkner, Gabry & Vehtari 2020).
 
+With errors in size, the latent true log sizes evolve along the same tree
+(:func:`size_tree_population`: Brownian motion from a root mean, λ = 1 for the sizes).
+
 Branch lengths are divided by the largest root-to-tip distance (:func:`scale_to_unit_height`),
 so σ is the residual SD of a species at the full height of the tree, on the same scale as
 the residual SD of a model without shared ancestry.
