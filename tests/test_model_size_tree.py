@@ -117,3 +117,25 @@ def test_fit_with_sizes_along_the_tree_recovers_the_exponent_without_divergences
     rate_sd = np.sqrt(r @ c_inv @ r / (len(true) - 1))
     lo, hi = np.quantile(idata.posterior["size_tree_sd"].values, [0.05, 0.95])
     assert lo <= rate_sd <= hi
+
+
+def test_demo_ancestry_spec_with_replicate_errors_puts_the_true_sizes_on_the_tree():
+    from pathlib import Path
+
+    from allolaw.model.spec import load_spec
+    from allolaw.phylogeny import Phylogeny
+    from allolaw.testing import simulate_pooled
+
+    # invented data: replicate size errors (estimated SDs) on a random tree
+    sim = simulate_pooled(seed=27, n_species=10, size_error_sd=0.1, replicates=2)
+    base = scale_to_unit_height(random_tree(10, seed=28))
+    tree = Phylogeny(base.parent, base.length, base.tip_node, list(sim.data["species"]))
+    spec = load_spec(Path(__file__).resolve().parents[1] / "models", "ancestry_errors")
+    model = build_model(sim.data, spec, levels=[], log_reference_size=0.0, phylogeny=tree)
+    assert "size_error_u" in {v.name for v in model.free_RVs}
+    point = {**model.initial_point(), "size_tree_mean": 0.4, "size_tree_sd_log__": 0.2}
+    [density, true] = model.replace_rvs_by_values(
+        [model["size_ancestry_density"], model["true_log_size"]])
+    got, sizes = model.compile_fn([density, true], inputs=model.value_vars,
+                                  on_unused_input="ignore")(point)
+    assert float(got) == pytest.approx(_dense_logpdf(tree, sizes, 0.4, np.exp(0.2)), abs=1e-8)
