@@ -95,7 +95,9 @@ def build_model(
     (:mod:`allolaw.model.error_sd`; the same for trait errors). The true log sizes follow a
     normal population nested like the spec's taxon levels
     (:func:`~allolaw.model.terms.true_log_size`), one normal population without taxon
-    levels. With ``ratio`` errors (fixed ratio, no scatter beyond measurement error) this
+    levels; with shared ancestry they evolve by Brownian motion along the tree instead
+    (:func:`~allolaw.model.phylo_terms.size_tree_population`), taxon levels or not. With
+    ``ratio`` errors (fixed ratio, no scatter beyond measurement error) this
     is the Bayesian form of Deming regression (Deming 1943).
     Taxon deviations are normal per level, the terms of one taxon correlated (LKJ prior, the
     default) or independent; their SDs and correlations describe the deviations at the data's
@@ -154,7 +156,8 @@ def build_model(
         whiten = not prior_only and spec.taxa["parameterisation"] == "auto"
         sd_size, sd_estimated = _error_sd(inputs, "size", spec, prior_only)
         size = true_log_size(spec, inputs, log_size_obs, sigma_holder=sigma, whiten=whiten,
-                             sd_size=sd_size, sd_estimated=sd_estimated)
+                             sd_size=sd_size, sd_estimated=sd_estimated,
+                             phylogeny=phylogeny if spec.shared_ancestry != "none" else None)
         if spec.size_error == "ratio":
             sigma = size.sigma
         scatter = scatter_level(spec, levels)  # scatter by taxon (model/scatter.py)

@@ -13,6 +13,9 @@ draw (:func:`allolaw.phylogeny.loo_log_density`) into ``log_likelihood["trait"]`
 the model on the same footing as models with independent residuals when compared by LOO
 (Bürkner, Gabry & Vehtari 2020).
 
+With errors in size, the latent true log sizes evolve along the same tree
+(:func:`size_tree_population`: Brownian motion from a root mean, λ = 1 for the sizes).
+
 Branch lengths are divided by the largest root-to-tip distance (:func:`scale_to_unit_height`),
 so σ is the residual SD of a species at the full height of the tree, on the same scale as
 the residual SD of a model without shared ancestry.
@@ -35,7 +38,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from allolaw.errors import UserError
-from allolaw.phylogeny import Phylogeny, log_density, loo_log_density, read_tree
+from allolaw.phylogeny import (
+    Phylogeny,
+    log_density,
+    loo_log_density,
+    read_tree,
+    size_log_density,
+)
 
 if TYPE_CHECKING:
     import arviz as az
@@ -43,6 +52,8 @@ if TYPE_CHECKING:
 
 __all__ = [
     "SIGNAL",
+    "SIZE_TREE_MEAN",
+    "SIZE_TREE_SD",
     "AncestryTerm",
     "add_ancestry_log_likelihood",
     "ancestry_term",
@@ -50,10 +61,14 @@ __all__ = [
     "load_phylogeny",
     "scale_to_unit_height",
     "simulate_residuals",
+    "size_tree_population",
 ]
 
 #: Name of Pagel's λ in the posterior.
 SIGNAL = "ancestry_signal"
+#: Names of the root mean and the SD per unit tree height of the true log sizes on the tree.
+SIZE_TREE_MEAN = "size_tree_mean"
+SIZE_TREE_SD = "size_tree_sd"
 # attribute of the pm.Model that carries the term for the log-likelihood step
 _ATTRIBUTE = "allolaw_ancestry"
 
@@ -117,6 +132,61 @@ def ancestry_term(
     else:
         lam = pm.Beta(SIGNAL, alpha=float(prior["alpha"]), beta=float(prior["beta"]))
 
+    rv = _tree_normal(name, mu, sigma, lam, phylogeny, observed=observed)
+    setattr(model, _ATTRIBUTE, AncestryTerm(mu, sigma, lam, phylogeny,
+                                            np.asarray(observed, float)))
+    return rv
+
+
+def size_tree_population(log_size: np.ndarray, population: dict[str, float],
+                         phylogeny: Phylogeny, *, whiten: bool, near: Any = None) -> Any:
+    """Latent true log sizes that evolve by Brownian motion along the tree; returns them.
+
+    ``true_log_size ~ N(size_tree_mean, size_tree_sd² C)`` with ``C`` the tree covariance of
+    the unit-height tree: plain Brownian motion (λ = 1 for the sizes, whatever the residuals'
+    λ) from the root's value ``size_tree_mean`` (prior normal(``population["mean"]``,
+    ``population["sd"]``)), ``size_tree_sd`` the SD of a species' size around the root at
+    the full height of the tree (half-normal(``population["sd_scale"]``)). The density comes
+    from :func:`allolaw.phylogeny.size_log_density` (messages from the tips up, no n × n
+    matrix).
+
+    With ``whiten`` the free variable is ``size_shift``, each true size minus its measured
+    value (flat; with ``near``, estimated error SDs, ``size_error_u`` of
+    :func:`~allolaw.model.error_sd.true_near_measured`), and the density of the true sizes is
+    the potential ``size_ancestry_density``: the sampler starts at the measured sizes and
+    works on the scale of the measurement error. ``whiten=False`` (prior draws) writes
+    ``true_log_size`` as one variable along the tree, drawn by Brownian motion down it.
+
+    References
+    ----------
+    Felsenstein, J. (1985). Phylogenies and the comparative method. Am. Nat. 125, 1–15.
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    from allolaw.model.error_sd import true_near_measured
+
+    mean = pm.Normal(SIZE_TREE_MEAN, float(population["mean"]), float(population["sd"]))
+    sd = pm.HalfNormal(SIZE_TREE_SD, float(population["sd_scale"]))
+    if not whiten:
+        centre = mean * pt.ones(phylogeny.n_species)
+        return _tree_normal("true_log_size", centre, sd, pt.as_tensor_variable(1.0), phylogeny)
+    if near is None:
+        shift = pm.Flat("size_shift", dims="species")
+        true = pm.Deterministic("true_log_size", log_size + shift, dims="species")
+    else:
+        true = true_near_measured(log_size, near)
+    pm.Potential("size_ancestry_density", size_log_density(true, mean, sd, phylogeny))
+    return true
+
+
+def _tree_normal(name: str, mu: Any, sigma: Any, lam: Any, phylogeny: Phylogeny, *,
+                 observed: Any = None) -> Any:
+    # one variable N(mu, σ²(λC + (1 − λ)D)) over the species: density by messages up the
+    # tree, draws by Brownian motion down it (no n × n matrix either way)
+    import pymc as pm
+    import pytensor.tensor as pt
+
     def logp(value: Any, mu_: Any, sigma_: Any, lam_: Any) -> Any:
         return log_density(value - mu_, sigma_, lam_, phylogeny)
 
@@ -131,11 +201,8 @@ def ancestry_term(
                                      value[phylogeny.parent[nodes]] + step[nodes])
         return mu_ + sigma_ * value[phylogeny.tip_node]
 
-    rv = pm.CustomDist(name, mu, sigma, lam, logp=logp, dist=dist, ndim_supp=1,
-                       signature="(n),(),()->(n)", observed=observed, dims="species")
-    setattr(model, _ATTRIBUTE, AncestryTerm(mu, sigma, lam, phylogeny,
-                                            np.asarray(observed, float)))
-    return rv
+    return pm.CustomDist(name, mu, sigma, lam, logp=logp, dist=dist, ndim_supp=1,
+                         signature="(n),(),()->(n)", observed=observed, dims="species")
 
 
 def simulate_residuals(sigma: float, lam: float, phylogeny: Phylogeny, *,

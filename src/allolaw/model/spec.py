@@ -415,6 +415,12 @@ def _describe_error_sd(spec: ModelSpec, axis: str) -> str:
 
 
 def _describe_size_population(spec: ModelSpec) -> str:
+    if spec.shared_ancestry != "none":
+        return (
+            "The true log sizes evolve by Brownian motion along the tree of the dataset "
+            "(Felsenstein 1985; Pagel's λ of the sizes fixed at 1) from a root mean, with an SD "
+            "per unit of tree height, both estimated; taxon levels do not enter the sizes."
+        )
     if spec.taxa["levels"] != "none" and (spec.taxa["vary"]
                                           or spec.curvature == "shared_and_taxa"):
         return (
@@ -524,6 +530,11 @@ def _check_ancestry(spec: dict[str, Any], source: str) -> None:
     if spec["residuals"] != "normal":
         msg = (f"{source}: key 'shared_ancestry': bad value {value!r}: shared ancestry needs "
                f"normal residuals (residuals is {spec['residuals']!r})")
+        raise UserError(msg)
+    if spec["size_error"] == "ratio":
+        msg = (f"{source}: key 'shared_ancestry': bad value {value!r}: shared ancestry cannot "
+               "be combined with size_error 'ratio' (no residual beyond measurement error to "
+               "follow the tree; use size_error: known or replicates)")
         raise UserError(msg)
     if spec["trait_error"] != "none":
         msg = (f"{source}: key 'shared_ancestry': bad value {value!r}: shared ancestry cannot "

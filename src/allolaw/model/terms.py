@@ -14,8 +14,10 @@ import pytensor.tensor as pt
 from allolaw.model.correlated import level_step
 from allolaw.model.error_sd import true_near_measured
 from allolaw.model.inputs import Inputs
+from allolaw.model.phylo_terms import size_tree_population
 from allolaw.model.spec import ModelSpec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
+from allolaw.phylogeny import Phylogeny
 
 __all__ = ["SIZE_MEASUREMENT"]
 
@@ -41,12 +43,15 @@ def residual_sd(spec: ModelSpec) -> Any:
 
 def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_holder: Any,
                   whiten: bool = True, sd_size: Any = None, sd_estimated: bool = False,
-                  ) -> _Size:
+                  phylogeny: Phylogeny | None = None) -> _Size:
     """The latent true log sizes (with errors in size) and, in ratio mode, the residual SD.
 
     With taxon levels in the spec, the true sizes follow a nested population mirroring the
     taxon tree (:func:`size_population`); without, one normal population (``size_mean``,
-    ``size_sd``). ``whiten=False`` writes the plain non-centred form (prior draws).
+    ``size_sd``); with ``phylogeny`` (shared ancestry), Brownian motion along the tree
+    instead (:func:`~allolaw.model.phylo_terms.size_tree_population`; the taxon levels then
+    shape the law's taxon terms only). ``whiten=False`` writes the plain non-centred form
+    (prior draws).
     ``sd_size``: the error SD of each species' measured log size (default: the constant
     data ``sd_log_size``); ``sd_estimated``: it holds parameters
     (:mod:`allolaw.model.error_sd`), so with ``whiten`` the true sizes are written around the
@@ -62,7 +67,9 @@ def true_log_size(spec: ModelSpec, inputs: Inputs, log_size_obs: Any, *, sigma_h
     population = spec.priors.get("size_population") or {
         "mean": float(np.mean(x)), "sd": 5.0 * spread, "sd_scale": 2.0 * spread}
     near = sd_size if (whiten and sd_estimated) else None
-    if inputs.taxa:
+    if phylogeny is not None:
+        true = size_tree_population(x, population, phylogeny, whiten=whiten, near=near)
+    elif inputs.taxa:
         true = size_population(inputs, population, whiten=whiten, near=near)
     else:
         size_mean = pm.Normal("size_mean", population["mean"], population["sd"])
