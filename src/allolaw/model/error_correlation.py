@@ -90,7 +90,8 @@ def read_paired_replicates(data: pd.DataFrame, errors: dict[str, Any], spec_name
     bad = observed & (np.abs(cov) > bound * (1 + 1e-9) + 1e-12)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        msg = (f"{source}: line {row + 2}, column '{COVARIANCE_COLUMN}', value {cov[row]!r}: "
+        value = float(cov[row])
+        msg = (f"{source}: line {row + 2}, column '{COVARIANCE_COLUMN}', value {value!r}: "
                f"larger in size than the two replicate variances allow (|cov| ≤ {bound[row]:.6g})")
         raise UserError(msg)
     return PairedReplicates(both=both, observed=observed,
