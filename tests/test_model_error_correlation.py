@@ -144,6 +144,15 @@ def test_error_correlation_none_or_one_replicate_axis_keeps_errors_independent()
     assert "replicate_covariance" not in prior.named_vars  # prior draws: no replicate data
 
 
+def test_no_species_with_a_replicate_covariance_keeps_errors_independent():
+    # nothing to learn ρ from: no correlation parameter (its prior alone would be read)
+    sim = _small()
+    data = sim.data.assign(replicate_cov_log_size_trait=np.nan)
+    model = build_model(data, parse_spec(dict(BOTH), name="b"), levels=[],
+                        log_reference_size=0.0)
+    assert "error_correlation" not in model.named_vars
+
+
 def test_missing_or_impossible_covariance_names_file_line_column_and_value():
     sim = _small()
     spec = parse_spec(dict(BOTH), name="b")

@@ -36,6 +36,7 @@ References
 
 from __future__ import annotations
 
+import logging
 from dataclasses import dataclass
 from typing import Any
 
@@ -48,6 +49,8 @@ from allolaw.errors import UserError
 
 __all__ = ["COVARIANCE_COLUMN", "PairedReplicates", "conditional_trait_error",
            "correlated_errors", "paired_covariance_kernel", "read_paired_replicates"]
+
+log = logging.getLogger(__name__)
 
 #: clean.csv column of the per-species replicate covariance of log size and log trait.
 COVARIANCE_COLUMN = "replicate_cov_log_size_trait"
@@ -131,10 +134,10 @@ def correlated_errors(data: pd.DataFrame, inputs: Any, spec: Any, *, true_size: 
     """Build ρ and its data; return the trait's mean shift and error SD, or ``None``.
 
     ``None`` (errors independent, as before) unless the spec has ``error_correlation:
-    estimated`` with replicate errors on both axes and some species has both SDs
-    estimated. Otherwise adds ``error_correlation`` (uniform(−1, 1)), the potential
-    ``replicate_covariance`` (``observe=False``, prior draws, leaves it out) and returns,
-    per species, ``ρ_i·(s_y/s_x)·(measured − true log size)`` and ``s_y·sqrt(1 − ρ_i²)``
+    estimated`` with replicate errors on both axes and some species has paired replicate
+    data (both SDs estimated, n ≥ 2, a finite covariance). Otherwise adds
+    ``error_correlation`` (uniform(−1, 1)), the potential ``replicate_covariance``
+    (``observe=False``, prior draws, leaves it out) and returns, per species, ``ρ_i·(s_y/s_x)·(measured − true log size)`` and ``s_y·sqrt(1 − ρ_i²)``
     with ``ρ_i = ρ`` where both SDs are estimated and 0 elsewhere.
     """
     if (getattr(spec, "error_correlation", "none") != "estimated"
@@ -145,7 +148,10 @@ def correlated_errors(data: pd.DataFrame, inputs: Any, spec: Any, *, true_size: 
         return None
     source = data.attrs.get("source", "clean.csv")
     paired = read_paired_replicates(data, errors, spec.name, source)
-    if not paired.both.any():
+    if not paired.observed.any():
+        # no species with paired replicates: nothing to learn ρ from, errors independent
+        log.info("%s: no species has a replicate covariance; size and trait errors are "
+                 "taken as independent", source)
         return None
     model = pm.modelcontext(None)
     rho = pm.Uniform("error_correlation", -1.0, 1.0)
