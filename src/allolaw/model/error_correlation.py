@@ -137,8 +137,9 @@ def correlated_errors(data: pd.DataFrame, inputs: Any, spec: Any, *, true_size: 
     estimated`` with replicate errors on both axes and some species has paired replicate
     data (both SDs estimated, n ≥ 2, a finite covariance). Otherwise adds
     ``error_correlation`` (uniform(−1, 1)), the potential ``replicate_covariance``
-    (``observe=False``, prior draws, leaves it out) and returns, per species, ``ρ_i·(s_y/s_x)·(measured − true log size)`` and ``s_y·sqrt(1 − ρ_i²)``
-    with ``ρ_i = ρ`` where both SDs are estimated and 0 elsewhere.
+    (``observe=False``, prior draws, leaves it out) and returns, per species,
+    ``ρ_i·(s_y/s_x)·(measured − true log size)`` and ``s_y·sqrt(1 − ρ_i²)`` with
+    ``ρ_i = ρ`` where both SDs are estimated and 0 elsewhere.
     """
     if (getattr(spec, "error_correlation", "none") != "estimated"
             or spec.size_error != "replicates" or spec.trait_error != "replicates"):
