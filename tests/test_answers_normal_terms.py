@@ -37,6 +37,15 @@ def test_correlated_or_heavy_tailed_residuals_give_no_pieces():
     assert law_pieces(line.idata, _spec(residuals="student_t")) is None
 
 
+def test_correlated_size_and_trait_errors_give_no_pieces():
+    # the trait's mean then holds ρ·(s_y/s_x)·(measured − true size), not in the pieces
+    line = conjugate_line_posterior(seed=3)
+    assert law_pieces(line.idata, _spec()) is not None
+    post = line.idata.posterior
+    line.idata.posterior = post.assign(error_correlation=post["sigma"] * 0 + 0.5)
+    assert law_pieces(line.idata, _spec()) is None
+
+
 def test_self_check_passes_matching_conditionals_and_names_a_shifted_mean():
     rng = np.random.default_rng(0)
     means = rng.normal(1.0, 0.1, 4000)

@@ -9,6 +9,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from allolaw.cli import main
 from allolaw.config import load_config, validate_config
@@ -458,6 +460,47 @@ def test_aggregate_species_directly_on_a_frame():
     assert pooled["size"]["sd"] == pytest.approx(math.sqrt(2.0))
 
 
+def test_replicate_covariance_of_log_size_and_trait_matches_numpy_cov(tmp_path):
+    # rows paired by line; numpy.cov(x, y, ddof=1)[0, 1] is the reference (general-purpose
+    # library); one row gives NaN
+    text = (
+        "species,family,mass,rate\n"
+        "S a,F,10,1\nS a,F,20,3\nS a,F,40,2\n"
+        "S b,F,5,2\nS b,F,6,1\n"
+        "S c,G,7,3\n"
+    )
+    clean, _, _ = _prepare(tmp_path, text)
+    c = clean.set_index("species")["replicate_cov_log_size_trait"]
+    for name, mass, rate in (("S a", [10, 20, 40], [1, 3, 2]), ("S b", [5, 6], [2, 1])):
+        reference = np.cov(np.log(mass), np.log(rate), ddof=1)[0, 1]
+        assert c[name] == pytest.approx(reference, rel=1e-12)
+    assert math.isnan(c["S c"])
+    assert list(clean.columns).index("replicate_cov_log_size_trait") == list(
+        clean.columns).index("replicate_n_trait") + 1
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from("abcd"),
+                          st.floats(-5, 5, allow_nan=False), st.floats(-5, 5, allow_nan=False)),
+                min_size=1, max_size=12))
+def test_replicate_covariance_of_any_frame_matches_numpy_cov(values):
+    # random species frames (Hypothesis): each species' covariance equals numpy.cov of its
+    # rows (ddof 1), NaN for one row
+    rows = pd.DataFrame({
+        "species": [v[0] for v in values], "source": "x",
+        "log_size": [v[1] for v in values], "log_trait": [v[2] for v in values],
+        "sd_log_size_row": np.nan, "sd_log_trait_row": np.nan,
+    })
+    clean, _ = aggregate_species(rows, levels=[])
+    got = clean.set_index("species")["replicate_cov_log_size_trait"]
+    for name, sub in rows.groupby("species"):
+        if len(sub) == 1:
+            assert math.isnan(got[name])
+        else:
+            reference = np.cov(sub["log_size"], sub["log_trait"], ddof=1)[0, 1]
+            assert got[name] == pytest.approx(reference, rel=1e-9, abs=1e-9)
+
+
 def test_singleton_taxon_is_kept_and_flagged(tmp_path):
     clean, _, prepared = _prepare(tmp_path, GOOD + "Talpa eps,Talpidae,70,0.5\n")
     c = clean.set_index("species")
@@ -628,7 +671,8 @@ def test_demo_clean_tables_follow_the_contract(demo_results):
             "species", *levels, "log_size", "log_trait", "n_rows", "within_sd_log_size",
             "within_sd_log_trait", "sd_log_size", "sd_log_trait", "sd_source_size",
             "sd_source_trait", "replicate_var_log_size", "replicate_n_size",
-            "replicate_var_log_trait", "replicate_n_trait", *covariates, "source",
+            "replicate_var_log_trait", "replicate_n_trait", "replicate_cov_log_size_trait",
+            *covariates, "source",
             "flag_outlier", "flag_singleton_taxon",
         ]
         assert clean["species"].is_unique

@@ -88,6 +88,9 @@ def test_correlated_errors_have_the_stated_correlation_and_standard_errors():
     assert np.mean(data["sd_log_size"] ** 2) == pytest.approx(0.3**2 / 4, rel=0.05)
     assert set(data["sd_source_size"]) == {"replicates"}
     assert set(data["n_rows"]) == {4}
+    # replicate covariance (ddof 1) is unbiased for an individual's covariance β·s_d²
+    assert np.mean(data["replicate_cov_log_size_trait"]) == pytest.approx(0.75 * 0.3**2,
+                                                                          rel=0.05)
 
 
 def test_taxon_scatter_residual_sd_differs_by_genus_as_recorded():

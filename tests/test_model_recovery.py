@@ -141,8 +141,8 @@ def test_simulated_tables_have_the_clean_csv_columns():
     expected = ["species", "order", "family", "log_size", "log_trait", "n_rows",
                 "within_sd_log_size", "within_sd_log_trait", "sd_log_size", "sd_log_trait",
                 "sd_source_size", "sd_source_trait", "replicate_var_log_size",
-                "replicate_n_size", "replicate_var_log_trait", "replicate_n_trait", "source",
-                "flag_outlier", "flag_singleton_taxon"]
+                "replicate_n_size", "replicate_var_log_trait", "replicate_n_trait",
+                "replicate_cov_log_size_trait", "source", "flag_outlier", "flag_singleton_taxon"]
     assert list(sim.data.columns) == expected
     assert isinstance(sim.data, pd.DataFrame)
     assert sim.data["species"].is_unique

@@ -10,7 +10,8 @@ one set of guards: when the fit is not of that kind (Student-t residuals, residu
 along a tree, a within/between split, no observed data kept) :func:`law_pieces` returns
 ``None`` and the callers fall back to a density fitted to the draws. Every caller also checks
 its conditional against the draws (:func:`self_check`), so a model feature these pieces do
-not know is caught there.
+not know is caught there. Correlated size and trait errors (``error_correlation`` in the
+posterior) also give ``None``.
 
 Written by hand because no library reads conditionals out of a PyMC trace.
 """
@@ -108,6 +109,10 @@ def law_pieces(idata: az.InferenceData, spec: dict[str, Any]) -> LawPieces | Non
     if spec.get("shared_ancestry", "none") != "none":
         return None  # residuals correlated along the tree: the conditional is not per species
     post = idata.posterior
+    if "error_correlation" in post:
+        # size and trait errors correlated (model/error_correlation.py): the trait's mean
+        # holds a shift by the size error, which these pieces do not carry
+        return None
     const = getattr(idata, "constant_data", None)
     obs = getattr(idata, "observed_data", None)
     if const is None or obs is None or "trait" not in obs or "sigma" not in post:

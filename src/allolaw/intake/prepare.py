@@ -61,7 +61,7 @@ _RESERVED = frozenset({
     "sd_log_size", "sd_log_trait", "sd_source_size", "sd_source_trait", "source",
     "flag_outlier", "flag_singleton_taxon", "flag_note", "row", "file", "line",
     "sd_log_size_row", "sd_log_trait_row", "replicate_var_log_size", "replicate_n_size",
-    "replicate_var_log_trait", "replicate_n_trait",
+    "replicate_var_log_trait", "replicate_n_trait", "replicate_cov_log_size_trait",
 })
 
 

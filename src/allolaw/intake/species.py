@@ -59,7 +59,9 @@ def aggregate_species(
         ``log_size``/``log_trait`` = mean of logs; ``within_sd_log_*`` = SD of logs between
         replicates (ddof 1; NaN for one replicate); ``replicate_var_log_*`` = their sample
         variance (ddof 1; NaN for one replicate) and ``replicate_n_size``/``replicate_n_trait``
-        the number of values behind it; ``sd_log_*`` = SD of the species mean:
+        the number of values behind it; ``replicate_cov_log_size_trait`` = the sample
+        covariance of log size and log trait over the species' rows, paired by row (ddof 1;
+        NaN for one replicate or a row without both values); ``sd_log_*`` = SD of the species mean:
         ``given`` when every row has an SD (sqrt(Σ sdᵢ²)/n), else ``replicates`` (within SD /
         sqrt(n)) for n ≥ 2, else ``pooled`` (pooled within SD / sqrt(1)), else ``none`` (NaN)
         when no species of the dataset has two replicates.
@@ -102,10 +104,25 @@ def aggregate_species(
             "given",
             np.where(multi, "replicates", "none" if math.isnan(pooled_sd) else "pooled"),
         )
+    clean["replicate_cov_log_size_trait"] = _replicate_covariance(rows, clean["n_rows"])
     for name in covariates:
         clean[f"cov_{name}"] = groups[f"cov_{name}"].mean()
     clean["source"] = groups["source"].unique().map(lambda labels: ";".join(sorted(labels)))
     return clean.reset_index(), pooled
+
+
+def _replicate_covariance(rows: pd.DataFrame, n_rows: pd.Series) -> pd.Series:
+    # sample covariance (ddof 1) of log size and log trait over a species' rows, paired by
+    # row; NaN for one row or when a row lacks either value (the model reads it,
+    # model/error_correlation.py)
+    x, y = rows["log_size"], rows["log_trait"]
+    species = rows["species"]
+    complete = (x.notna() & y.notna()).groupby(species, sort=False).all()
+    dx = x - x.groupby(species, sort=False).transform("mean")
+    dy = y - y.groupby(species, sort=False).transform("mean")
+    total = (dx * dy).groupby(species, sort=False).sum(min_count=1)
+    cov = total / (n_rows.where(n_rows >= 2) - 1)
+    return cov.where(complete & (n_rows >= 2)).reindex(n_rows.index)
 
 
 def _pooled_sd(rows: pd.DataFrame, col: str) -> dict[str, Any]:
@@ -282,7 +299,8 @@ def order_clean(clean: pd.DataFrame, levels: list[str], covariates: list[str]) -
         "species", *levels, "log_size", "log_trait", "n_rows",
         "within_sd_log_size", "within_sd_log_trait", "sd_log_size", "sd_log_trait",
         "sd_source_size", "sd_source_trait", "replicate_var_log_size", "replicate_n_size",
-        "replicate_var_log_trait", "replicate_n_trait", *[f"cov_{c}" for c in covariates],
+        "replicate_var_log_trait", "replicate_n_trait", "replicate_cov_log_size_trait",
+        *[f"cov_{c}" for c in covariates],
         "source", "flag_outlier", "flag_singleton_taxon",
     ]
     return clean.sort_values([*levels, "species"], kind="stable")[columns].reset_index(drop=True)

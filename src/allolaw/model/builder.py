@@ -25,6 +25,7 @@ import pymc as pm
 import pytensor.tensor as pt
 
 from allolaw.errors import UserError
+from allolaw.model.error_correlation import correlated_errors
 from allolaw.model.error_sd import species_error_sd
 from allolaw.model.inputs import read_inputs
 from allolaw.model.phylo_terms import ancestry_term
@@ -185,6 +186,12 @@ def build_model(
         total_sd = sigma
         if spec.trait_error in ("known", "replicates"):
             sd_trait, _ = _error_sd(inputs, "trait", spec, prior_only)
+            # size and trait errors of a species mean correlated (model/error_correlation.py)
+            joint = correlated_errors(data, inputs, spec, true_size=size.value,
+                                      sd_size=sd_size, sd_trait=sd_trait,
+                                      observe=not prior_only)
+            if joint is not None:
+                offset, sd_trait = offset + joint[0], joint[1]
             total_sd = pt.sqrt(sigma**2 + sd_trait**2)
 
         mu = offset

@@ -50,6 +50,7 @@ class ModelSpec:
     source: str = field(default="", compare=False)
     within_species: str = "together"
     scatter_by_taxon: str = "none"
+    error_correlation: str = "estimated"
 
     def to_dict(self) -> dict[str, Any]:
         """Return the spec as plain data (the keys of the YAML file plus ``name``)."""
@@ -68,6 +69,7 @@ class ModelSpec:
             "within_species": self.within_species,
             "shared_ancestry": self.shared_ancestry,
             "scatter_by_taxon": self.scatter_by_taxon,
+            "error_correlation": self.error_correlation,
         }
 
     def to_json(self) -> str:
@@ -218,6 +220,7 @@ def parse_spec(raw: Any, *, name: str, source: str = "<spec>") -> ModelSpec:
         source=source,
         within_species=spec["within_species"],
         scatter_by_taxon=spec["scatter_by_taxon"],
+        error_correlation=spec["error_correlation"],
     )
 
 
@@ -398,12 +401,30 @@ def _describe_errors(spec: ModelSpec) -> str:
             "of a species' n replicate log values, times (n − 1) over the true error variance, "
             "is chi-square with n − 1 degrees of freedom, and the species mean has error SD "
             "true error SD / √n; a species with one value takes its error SD from the pooled "
-            "distribution. Errors are assumed normal on the log scale and independent between "
-            "replicates, between size and trait, and of the species' true values. Where they "
-            "are not (e.g. a species value is a mean of individuals whose trait follows their "
-            "own size), the correction for size error overshoots the exponent."
+            "distribution. " + _describe_error_pairs(spec)
         )
     return " ".join(parts) or "Size and trait are taken as measured without error."
+
+
+def _describe_error_pairs(spec: ModelSpec) -> str:
+    # independence of size and trait errors, or their estimated correlation
+    if (spec.error_correlation == "estimated" and spec.size_error == "replicates"
+            and spec.trait_error == "replicates"):
+        return (
+            "Errors are assumed normal on the log scale, independent between replicates and "
+            "of the species' true values. The size and trait errors of a species whose two "
+            "error SDs are estimated are bivariate normal with one correlation for the "
+            "dataset (uniform(−1, 1) prior), learnt from the species' replicate covariances "
+            "(Wishart likelihood of each species' replicate cross-products); the trait is "
+            "normal given the true size, its mean shifted by the correlated part of the size "
+            "error and its error variance reduced by the factor 1 − correlation²."
+        )
+    return (
+        "Errors are assumed normal on the log scale and independent between "
+        "replicates, between size and trait, and of the species' true values. Where they "
+        "are not (e.g. a species value is a mean of individuals whose trait follows their "
+        "own size), the correction for size error overshoots the exponent."
+    )
 
 
 def _describe_error_sd(spec: ModelSpec, axis: str) -> str:

@@ -314,6 +314,7 @@ def clean_frame(
     sd_log_trait: np.ndarray | float | None = None,
     replicates: int | None = None,
     within: tuple[np.ndarray, np.ndarray] | None = None,
+    within_cov: np.ndarray | None = None,
     source: str,
     source_label: str,
 ) -> pd.DataFrame:
@@ -331,6 +332,9 @@ def clean_frame(
     within
         Replicate SDs of log size and log trait (the ``within_sd_*`` columns, squared in
         ``replicate_var_*``); NaN without.
+    within_cov
+        Replicate covariance of log size and log trait (``replicate_cov_log_size_trait``);
+        NaN without.
     source
         Provenance kept in ``data.attrs["source"]``; ``source_label`` fills the ``source`` column.
     """
@@ -365,6 +369,7 @@ def clean_frame(
         replicate_n_size=np.full(n, replicates or 1, dtype=int),
         replicate_var_log_trait=within_sd(1) ** 2,
         replicate_n_trait=np.full(n, replicates or 1, dtype=int),
+        replicate_cov_log_size_trait=column(within_cov),
         source=source_label,
         flag_outlier=False,
         flag_singleton_taxon=False,

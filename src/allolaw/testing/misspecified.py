@@ -145,8 +145,11 @@ def simulate_correlated_errors(
     within_x = ind_x.std(axis=1, ddof=1)
     within_y = ind_y.std(axis=1, ddof=1)
     root_k = np.sqrt(individuals)
+    cov = ((ind_x - ind_x.mean(axis=1, keepdims=True))
+           * (ind_y - ind_y.mean(axis=1, keepdims=True))).sum(axis=1) / (individuals - 1)
     sim = _assemble(tree, seed, ind_x.mean(axis=1), ind_y.mean(axis=1), within_x / root_k,
-                    within_y / root_k, replicates=individuals, within=(within_x, within_y))
+                    within_y / root_k, replicates=individuals, within=(within_x, within_y),
+                    within_cov=cov)
     s_d, s_e = individual_size_sd, individual_trait_sd
     sim.truth.update(
         sigma=sigma, true_log_size=true_x, true_log_trait=true_y,
@@ -302,12 +305,13 @@ def _assemble(
     *,
     replicates: int | None = None,
     within: tuple[np.ndarray, np.ndarray] | None = None,
+    within_cov: np.ndarray | None = None,
 ) -> Simulated:
     data = clean_frame(
         [f"species_{i + 1:03d}" for i in range(tree.n)], log_size, log_trait,
         taxa=dict(zip(tree.names, tree.species_labels, strict=True)),
         sd_log_size=sd_size, sd_log_trait=sd_trait, replicates=replicates, within=within,
-        source=f"simulated (seed {seed})", source_label="simulated",
+        within_cov=within_cov, source=f"simulated (seed {seed})", source_label="simulated",
     )
     return Simulated(data=data, levels=list(tree.names), log_reference_size=0.0,
                      truth=dict(tree.truth))
