@@ -13,9 +13,10 @@ import scipy.stats
 
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
+from allolaw.model.describing import describe_spec
 from allolaw.model.error_correlation import conditional_trait_error, paired_covariance_kernel
 from allolaw.model.error_sd import replicate_variance_kernel
-from allolaw.model.spec import describe_spec, parse_spec
+from allolaw.model.spec import parse_spec
 from allolaw.testing.misspecified import simulate_correlated_errors
 
 BOTH = {"size_error": "replicates", "trait_error": "replicates", "taxa": {"levels": "none"}}

@@ -14,12 +14,13 @@ import scipy.stats
 
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
+from allolaw.model.describing import describe_spec
 from allolaw.model.error_sd import (
     read_replicate_errors,
     replicate_variance_kernel,
     replicate_variance_logp,
 )
-from allolaw.model.spec import describe_spec, load_spec, parse_spec
+from allolaw.model.spec import load_spec, parse_spec
 from allolaw.testing import quick_sample, simulate_pooled
 from allolaw.testing.misspecified import simulate_correlated_errors
 from allolaw.testing.misspecified_study import interval_covers, score_fit

@@ -16,12 +16,13 @@ from scipy import stats
 
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
+from allolaw.model.describing import describe_spec
 from allolaw.model.phylo_terms import (
     add_ancestry_log_likelihood,
     scale_to_unit_height,
     simulate_residuals,
 )
-from allolaw.model.spec import describe_spec, parse_spec
+from allolaw.model.spec import parse_spec
 from allolaw.phylogeny import random_tree, tree_covariance
 from allolaw.testing import as_clean_table, quick_sample
 

@@ -7,7 +7,8 @@ import yaml
 
 from allolaw.config import load_config
 from allolaw.errors import UserError
-from allolaw.model.spec import describe_spec, load_spec, parse_spec
+from allolaw.model.describing import describe_spec
+from allolaw.model.spec import load_spec, parse_spec
 
 REPO = Path(__file__).resolve().parents[1]
 MODELS = REPO / "models"

@@ -168,63 +168,92 @@ def build_model(
         feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
                    "curvature": centred_size**2}
 
-        # --- within/between split (model/within.py): the exponent acts on group means ---
-        if spec.within_species in ("separate", "separate_by_species"):
-            split = split_log_size(data, spec, levels=levels)
-            feature["exponent"] = pm.Data("group_mean_log_size", split.group_mean,
-                                          dims="species") - log_size_ref
-            within_part = within_term(model, split, spec)
-        else:
-            within_part = pt.zeros_like(centred_size)
-        # --- end of the within/between split ---
+        within_part = _within_split(model, data, spec, levels, feature, log_size_ref)
         offset = sum((shared[t] * feature[t] for t in shared), within_part)
         for cov in spec.covariates:
             offset = offset + covariate_term(cov, inputs, pri["covariate"])
         if spec.breakpoint == "one" and "exponent" in shared:
             offset = offset + hinge(spec, inputs, size.value, log_size_ref, shared["exponent"])
 
-        total_sd = sigma
-        if spec.trait_error in ("known", "replicates"):
-            sd_trait, _ = _error_sd(inputs, "trait", spec, prior_only)
-            # size and trait errors of a species mean correlated (model/error_correlation.py)
-            joint = correlated_errors(data, inputs, spec, true_size=size.value,
-                                      sd_size=sd_size, sd_trait=sd_trait,
-                                      observe=not prior_only)
-            if joint is not None:
-                offset, sd_trait = offset + joint[0], joint[1]
-            total_sd = pt.sqrt(sigma**2 + sd_trait**2)
+        offset, total_sd = _trait_error(data, inputs, spec, offset, sigma, size.value, sd_size,
+                                        prior_only)
 
         mu = offset
         if varying:
-            # the taxon values are whitened by the data (see taxon_terms); the prior draws
-            # and `parameterisation: non-centred` use the plain non-centred form
-            whiten = (not prior_only and spec.taxa["parameterisation"] == "auto"
-                      and spec.shared_ancestry == "none")
-            per_species = taxon_terms(
-                varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
-                features=feature if whiten else None,
-                target=pt.as_tensor_variable(inputs.log_trait) - offset,
-                noise_var=total_sd**2 * pt.ones_like(centred_size),
-                correlation_eta=(float(pri["taxon_correlation"]["eta"])
-                                 if spec.taxa["correlation"] == "estimated" else None),
-                centre_shift=float(log_reference_size) - centre,
-            )
-            for t in varying:
-                mu = mu + per_species[t] * feature[t]
+            for part in _taxon_parts(spec, varying, term_priors, inputs, feature, offset,
+                                     total_sd, centre_shift=float(log_reference_size) - centre,
+                                     prior_only=prior_only):
+                mu = mu + part
             if spec.breakpoint == "one" and "exponent" in varying:
                 mu = mu + hinge(spec, inputs, size.value, log_size_ref, model["exponent"])
 
-        if spec.shared_ancestry != "none":  # residuals along the tree (model/phylo_terms.py)
-            ancestry_term(TRAIT, mu, total_sd, pri, spec.shared_ancestry, phylogeny,
-                          inputs.log_trait, model)
-        elif spec.residuals == "student_t":
-            nu = pm.Gamma("nu", alpha=pri["nu"]["alpha"], beta=pri["nu"]["beta"])
-            pm.StudentT(TRAIT, nu=nu, mu=mu, sigma=total_sd, observed=inputs.log_trait,
-                        dims="species")
-        else:
-            pm.Normal(TRAIT, mu=mu, sigma=total_sd, observed=inputs.log_trait, dims="species")
+        _observe_trait(model, spec, mu, total_sd, inputs, phylogeny)
     log.debug("built model %s (taxon terms %s, prior_only=%s)", spec.name, varying, prior_only)
     return model
+
+
+def _taxon_parts(spec: ModelSpec, varying: list[str], term_priors: dict[str, Any],
+                 inputs: Any, feature: dict[str, Any], offset: Any, total_sd: Any, *,
+                 centre_shift: float, prior_only: bool) -> list[Any]:
+    """Per varying term, each species' taxon value times its feature (call inside the model)."""
+    pri = spec.priors
+    # the taxon values are whitened by the data (see taxon_terms); the prior draws and
+    # `parameterisation: non-centred` use the plain non-centred form
+    whiten = (not prior_only and spec.taxa["parameterisation"] == "auto"
+              and spec.shared_ancestry == "none")
+    per_species = taxon_terms(
+        varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
+        features=feature if whiten else None,
+        target=pt.as_tensor_variable(inputs.log_trait) - offset,
+        noise_var=total_sd**2 * pt.ones_like(feature["intercept"]),
+        correlation_eta=(float(pri["taxon_correlation"]["eta"])
+                         if spec.taxa["correlation"] == "estimated" else None),
+        centre_shift=centre_shift,
+    )
+    return [per_species[t] * feature[t] for t in varying]
+
+
+def _within_split(model: pm.Model, data: pd.DataFrame, spec: ModelSpec, levels: list[str],
+                  feature: dict[str, Any], log_size_ref: Any) -> Any:
+    """The within-species part of the law (model/within.py); the exponent then acts on means.
+
+    Without a split: zero. With one, ``feature["exponent"]`` becomes the centred group mean.
+    """
+    if spec.within_species not in ("separate", "separate_by_species"):
+        return pt.zeros_like(feature["exponent"])
+    split = split_log_size(data, spec, levels=levels)
+    feature["exponent"] = pm.Data("group_mean_log_size", split.group_mean,
+                                  dims="species") - log_size_ref
+    return within_term(model, split, spec)
+
+
+def _trait_error(data: pd.DataFrame, inputs: Any, spec: ModelSpec, offset: Any, sigma: Any,
+                 true_size: Any, sd_size: Any, prior_only: bool) -> tuple[Any, Any]:
+    """Mean offset and total SD of the observed log trait, with its measurement error."""
+    if spec.trait_error not in ("known", "replicates"):
+        return offset, sigma
+    sd_trait, _ = _error_sd(inputs, "trait", spec, prior_only)
+    # size and trait errors of a species mean correlated (model/error_correlation.py)
+    joint = correlated_errors(data, inputs, spec, true_size=true_size, sd_size=sd_size,
+                              sd_trait=sd_trait, observe=not prior_only)
+    if joint is not None:
+        offset, sd_trait = offset + joint[0], joint[1]
+    return offset, pt.sqrt(sigma**2 + sd_trait**2)
+
+
+def _observe_trait(model: pm.Model, spec: ModelSpec, mu: Any, total_sd: Any, inputs: Any,
+                   phylogeny: Any) -> None:
+    """The observed log trait: along the tree, Student-t or normal around ``mu``."""
+    pri = spec.priors
+    if spec.shared_ancestry != "none":  # residuals along the tree (model/phylo_terms.py)
+        ancestry_term(TRAIT, mu, total_sd, pri, spec.shared_ancestry, phylogeny,
+                      inputs.log_trait, model)
+    elif spec.residuals == "student_t":
+        nu = pm.Gamma("nu", alpha=pri["nu"]["alpha"], beta=pri["nu"]["beta"])
+        pm.StudentT(TRAIT, nu=nu, mu=mu, sigma=total_sd, observed=inputs.log_trait,
+                    dims="species")
+    else:
+        pm.Normal(TRAIT, mu=mu, sigma=total_sd, observed=inputs.log_trait, dims="species")
 
 
 def _error_sd(inputs: Any, axis: str, spec: ModelSpec, prior_only: bool) -> tuple[Any, bool]:

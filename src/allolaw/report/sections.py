@@ -144,7 +144,8 @@ def _json_attr(value: Any) -> Any:
 
 def _describe(name: str, spec: dict[str, Any]) -> str | None:
     try:
-        from allolaw.model.spec import describe_spec, parse_spec
+        from allolaw.model.describing import describe_spec
+        from allolaw.model.spec import parse_spec
 
         raw = {k: v for k, v in spec.items() if k != "name"}
         return describe_spec(parse_spec(raw, name=name, source=f"attrs of {name}"))
