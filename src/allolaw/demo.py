@@ -36,6 +36,7 @@ from typing import Any
 import numpy as np
 
 from allolaw.demo_individuals import running_speed, tree_individuals
+from allolaw.demo_text import blemish, centred, fmt
 from allolaw.demo_tree import island_tree
 from allolaw.intake.units import DEFAULT_ENERGY_PER_ML_O2_JOULE
 from allolaw.io import atomic_path, write_text
@@ -136,10 +137,10 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
     file_tree = "island_metabolism_tree.nwk"
     families = [f for fams in orders.values() for f in fams]
     order_of = {f: o for o, fams in orders.items() for f in fams}
-    order_shift = _centred(rng.normal(0.0, 0.25, len(orders)))
+    order_shift = centred(rng.normal(0.0, 0.25, len(orders)))
     order_shift_of = dict(zip(orders, order_shift, strict=True))
-    fam_slope = _centred(rng.normal(0.0, 0.05, len(families)))
-    fam_shift = _centred(rng.normal(0.0, 0.10, len(families)))
+    fam_slope = centred(rng.normal(0.0, 0.05, len(families)))
+    fam_shift = centred(rng.normal(0.0, 0.10, len(families)))
     fam_centre = rng.uniform(math.log(8.0), math.log(4000.0), len(families))
 
     species: list[dict[str, Any]] = []
@@ -194,35 +195,35 @@ def _island_metabolism(rng: np.random.Generator) -> tuple[dict[str, Any], dict[s
             watts = math.exp(log_rate)
             to_a = (i in team_a) if not both else (r % 2 == 0)
             if to_a:
-                rows_a.append([sp["species"], sp["order"], sp["family"], _fmt(mass_g),
-                               _fmt(watts * 3600.0 / energy), _fmt(temp_c, 3)])
+                rows_a.append([sp["species"], sp["order"], sp["family"], fmt(mass_g),
+                               fmt(watts * 3600.0 / energy), fmt(temp_c, 3)])
             else:
                 mass_unit = "kg" if mass_g > 500 and rng.random() < 0.7 else "g"
                 mass = mass_g / 1000.0 if mass_unit == "kg" else mass_g
                 rate_unit = "mW" if watts < 1.0 and rng.random() < 0.7 else "W"
                 rate = watts * 1000.0 if rate_unit == "mW" else watts
-                rows_b.append([sp["species"], sp["order"], sp["family"], _fmt(mass), mass_unit,
-                               _fmt(rate), rate_unit, _fmt(temp_c, 3)])
+                rows_b.append([sp["species"], sp["order"], sp["family"], fmt(mass), mass_unit,
+                               fmt(rate), rate_unit, fmt(temp_c, 3)])
 
     blemishes: list[dict[str, Any]] = []
     # Team A: a missing rate, a zero mass, an exact duplicate line, a decimal slip (×100).
     rows_a.insert(12, [*rows_a[11][:4], "NA", rows_a[11][5]])
-    blemishes.append(_blemish(file_a, 12 + 2, "rmr_ml_o2_h", "rate written as 'NA'", "dropped"))
+    blemishes.append(blemish(file_a, 12 + 2, "rmr_ml_o2_h", "rate written as 'NA'", "dropped"))
     rows_a.insert(40, [*rows_a[39][:3], "0", *rows_a[39][4:]])
-    blemishes.append(_blemish(file_a, 40 + 2, "body_mass_g", "body mass 0", "dropped"))
+    blemishes.append(blemish(file_a, 40 + 2, "body_mass_g", "body mass 0", "dropped"))
     rows_a.insert(71, list(rows_a[70]))
-    blemishes.append(_blemish(file_a, 71 + 2, None, "exact duplicate of the line above",
+    blemishes.append(blemish(file_a, 71 + 2, None, "exact duplicate of the line above",
                               "dropped"))
     slip = 95
-    rows_a[slip][4] = _fmt(float(rows_a[slip][4]) * 100.0)
-    blemishes.append(_blemish(file_a, slip + 2, "rmr_ml_o2_h",
+    rows_a[slip][4] = fmt(float(rows_a[slip][4]) * 100.0)
+    blemishes.append(blemish(file_a, slip + 2, "rmr_ml_o2_h",
                               "decimal point slipped two places: rate 100 times too large",
                               "used, flagged as outlier (outliers.remove is false)"))
     # Team B: a dash for a missing mass, a missing family.
     rows_b.insert(20, [*rows_b[19][:3], "—", *rows_b[19][4:]])
-    blemishes.append(_blemish(file_b, 20 + 2, "mass", "mass written as '—'", "dropped"))
+    blemishes.append(blemish(file_b, 20 + 2, "mass", "mass written as '—'", "dropped"))
     rows_b.insert(55, [rows_b[54][0], rows_b[54][1], "", *rows_b[54][3:]])
-    blemishes.append(_blemish(file_b, 55 + 2, "family", "family left empty", "dropped"))
+    blemishes.append(blemish(file_b, 55 + 2, "family", "family left empty", "dropped"))
 
     header_a = ["species", "order", "family", "body_mass_g", "rmr_ml_o2_h", "body_temp_c"]
     header_b = ["species", "order", "family", "mass", "mass_unit", "rate", "rate_unit",
@@ -298,7 +299,7 @@ def _cell_scaling(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
     sigma = 0.10
     size_error_sd = 0.08
     trait_error_sd = 0.08
-    group_shift = _centred(rng.normal(0.0, 0.10, len(groups)))
+    group_shift = centred(rng.normal(0.0, 0.10, len(groups)))
     # amol/min per fmol/h: 1 fmol/h = 1000 amol / 60 min.
     amol_min_per_fmol_h = 1000.0 / 60.0
     rows: list[list[str]] = []
@@ -312,15 +313,15 @@ def _cell_scaling(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
             for _ in range(int(rng.integers(2, 4))):
                 obs_x = x + rng.normal(0.0, size_error_sd)
                 log_rate = mu + rng.normal(0.0, trait_error_sd)
-                rows.append([f"{code}-{j + 1:03d}", group, _fmt(math.exp(obs_x)),
-                             _fmt(math.exp(log_rate) * amol_min_per_fmol_h)])
+                rows.append([f"{code}-{j + 1:03d}", group, fmt(math.exp(obs_x)),
+                             fmt(math.exp(log_rate) * amol_min_per_fmol_h)])
     file = "cell_scaling.csv"
     blemishes = []
     rows.insert(25, [rows[24][0], rows[24][1], rows[24][2], "nan"])
-    blemishes.append(_blemish(file, 25 + 2, "uptake_amol_min", "rate written as 'nan'",
+    blemishes.append(blemish(file, 25 + 2, "uptake_amol_min", "rate written as 'nan'",
                               "dropped"))
     rows.insert(100, [rows[99][0], rows[99][1], "0", rows[99][3]])
-    blemishes.append(_blemish(file, 100 + 2, "volume_um3", "cell volume 0", "dropped"))
+    blemishes.append(blemish(file, 100 + 2, "volume_um3", "cell volume 0", "dropped"))
     params = {
         "canonical_units": {"size": "um**3", "trait": "fmol/h"},
         "reference_size": break_volume,
@@ -360,20 +361,6 @@ def _cell_scaling(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
 
 # ----------------------------------------------------------------------------------------------
 # helpers
-
-
-def _centred(x: np.ndarray) -> np.ndarray:
-    return x - x.mean()
-
-
-def _fmt(value: float, digits: int = 4) -> str:
-    # Significant digits, positional notation, no trailing zeros: stable text across platforms.
-    return np.format_float_positional(value, precision=digits, unique=False, fractional=False,
-                                      trim="-")
-
-
-def _blemish(file: str, line: int, column: str | None, what: str, fate: str) -> dict[str, Any]:
-    return {"file": file, "line": line, "column": column, "what": what, "expected_fate": fate}
 
 
 def _write_table(path: Path, header: list[str], rows: list[list[str]], delimiter: str) -> None:

@@ -23,6 +23,8 @@ from typing import Any
 
 import numpy as np
 
+from allolaw.demo_text import blemish, centred, fmt
+
 __all__ = ["running_speed", "tree_individuals"]
 
 _EPITHETS = [
@@ -51,7 +53,7 @@ def tree_individuals(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str
     sigma = 0.10  # tree deviation from its species' within-species law (ln kg)
     within_spread = 0.30  # SD of ln diameter of trees around their species' centre
     centres = np.linspace(math.log(5.0), math.log(70.0), len(genera))
-    genus_shift = _centred(rng.normal(0.0, 0.15, len(genera)))
+    genus_shift = centred(rng.normal(0.0, 0.15, len(genera)))
     rows: list[list[str]] = []
     species_truth: dict[str, dict[str, float]] = {}
     for k, genus in enumerate(genera):
@@ -65,14 +67,14 @@ def tree_individuals(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str
             for _ in range(int(rng.integers(5, 9))):
                 d = rng.normal(0.0, within_spread)
                 log_mass = level + within * d + rng.normal(0.0, sigma)
-                rows.append([name, genus, _fmt(math.exp(centre + d), 3),
-                             _fmt(math.exp(log_mass))])
+                rows.append([name, genus, fmt(math.exp(centre + d), 3),
+                             fmt(math.exp(log_mass))])
     file = "tree_biomass.csv"
     blemishes = []
     rows.insert(30, [rows[29][0], rows[29][1], rows[29][2], "n/a"])
-    blemishes.append(_blemish(file, 30 + 2, "mass_kg", "mass written as 'n/a'", "dropped"))
+    blemishes.append(blemish(file, 30 + 2, "mass_kg", "mass written as 'n/a'", "dropped"))
     rows.insert(90, [rows[89][0], rows[89][1], "-" + rows[89][2], rows[89][3]])
-    blemishes.append(_blemish(file, 90 + 2, "diameter_cm", "negative diameter", "dropped"))
+    blemishes.append(blemish(file, 90 + 2, "diameter_cm", "negative diameter", "dropped"))
     rows = [[f"T{i + 1:04d}", *row] for i, row in enumerate(rows)]
     params = {
         "canonical_units": {"size": "cm", "trait": "kg"},
@@ -118,7 +120,7 @@ def running_speed(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
     intercept = math.log(12.0)  # m/s at 10 kg
     sigma = 0.12
     trait_error_sd = 0.06
-    family_shift = _centred(rng.normal(0.0, 0.15, len(families)))
+    family_shift = centred(rng.normal(0.0, 0.15, len(families)))
     rows: list[list[str]] = []
     for k, family in enumerate(families):
         stem = family.removesuffix("idae")
@@ -130,14 +132,14 @@ def running_speed(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
                 0.0, sigma)
             for _ in range(int(rng.integers(1, 4))):
                 speed_ms = math.exp(mu + rng.normal(0.0, trait_error_sd))
-                rows.append([name, family, _fmt(math.exp(log_mass)),
-                             _fmt(speed_ms * KMH_PER_MS)])
+                rows.append([name, family, fmt(math.exp(log_mass)),
+                             fmt(speed_ms * KMH_PER_MS)])
     file = "running_speed.csv"
     blemishes = []
     rows.insert(15, [rows[14][0], rows[14][1], rows[14][2], "NA"])
-    blemishes.append(_blemish(file, 15 + 2, "speed_kmh", "speed written as 'NA'", "dropped"))
+    blemishes.append(blemish(file, 15 + 2, "speed_kmh", "speed written as 'NA'", "dropped"))
     rows.insert(60, [rows[59][0], rows[59][1], "0", rows[59][3]])
-    blemishes.append(_blemish(file, 60 + 2, "mass_kg", "body mass 0", "dropped"))
+    blemishes.append(blemish(file, 60 + 2, "mass_kg", "body mass 0", "dropped"))
     params = {
         "canonical_units": {"size": "kg", "trait": "m/s"},
         "reference_size": reference,
@@ -164,17 +166,3 @@ def running_speed(rng: np.random.Generator) -> tuple[dict[str, Any], dict[str, A
     }
     header = ["species", "family", "mass_kg", "speed_kmh"]
     return {file: (header, rows, ",")}, params
-
-
-def _centred(x: np.ndarray) -> np.ndarray:
-    return x - x.mean()
-
-
-def _fmt(value: float, digits: int = 4) -> str:
-    # the text format of allolaw.demo: significant digits, positional, no trailing zeros
-    return np.format_float_positional(value, precision=digits, unique=False, fractional=False,
-                                      trim="-")
-
-
-def _blemish(file: str, line: int, column: str | None, what: str, fate: str) -> dict[str, Any]:
-    return {"file": file, "line": line, "column": column, "what": what, "expected_fate": fate}
