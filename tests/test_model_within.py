@@ -4,12 +4,19 @@ from __future__ import annotations
 
 import arviz as az
 import numpy as np
+import pandas as pd
+import pytensor.tensor as pt
 import pytest
 
 from allolaw.errors import UserError
 from allolaw.model.builder import build_model
 from allolaw.model.spec import parse_spec
-from allolaw.model.within import species_grouping_warning, split_log_size, within_term
+from allolaw.model.within import (
+    latent_split,
+    species_grouping_warning,
+    split_log_size,
+    within_term,
+)
 from allolaw.testing import as_clean_table, quick_sample
 from allolaw.testing.individuals import simulate_individuals
 
@@ -44,6 +51,45 @@ def test_split_needs_a_level_and_refuses_curvature():
         split_log_size(table, _spec(), levels=[])
     with pytest.raises(UserError, match="curvature"):
         build_model(table, _spec(curvature="shared"), levels=LEVELS, log_reference_size=0.0)
+
+
+def test_latent_split_of_a_size_vector_equals_numpy_group_means_and_deviations():
+    # the split of the true sizes is the same linear map as the split of the measured ones
+    sim = simulate_individuals(n_species=5, per_species=3, seed=4)
+    split = split_log_size(_table(sim), _spec(), levels=LEVELS)
+    values = np.random.default_rng(5).normal(0.0, 1.0, len(sim))
+    mean, deviation = latent_split(split, pt.as_tensor_variable(values))
+    groups = pd.Series(values).groupby(split.index).transform("mean").to_numpy()
+    np.testing.assert_allclose(mean.eval(), groups, rtol=1e-12)
+    np.testing.assert_allclose(deviation.eval(), values - groups, atol=1e-12)
+
+
+@pytest.mark.slow  # about a minute: CI runs it in the round-two studies step
+@pytest.mark.mcmc
+def test_within_exponent_with_size_error_is_not_diluted():
+    # Invented individuals with known truth: within 1.0, between 0.75, individuals spread
+    # around their species mean with SD 0.3 and measured with log-size error SD 0.2, so the
+    # within-species reliability is 0.09 / (0.09 + 0.04) = 0.69 and a slope on measured
+    # deviations is diluted to about 0.69 (Fuller 1987, Measurement Error Models, §1.1).
+    sim = simulate_individuals(n_species=30, per_species=6, between=0.75, within=1.0,
+                               size_error_sd=0.2, seed=11)
+    labels = [f"{s} #{k}" for k, s in enumerate(sim["species"])]
+    table = as_clean_table(labels, sim["log_size"].to_numpy(), sim["log_trait"].to_numpy(),
+                           taxa={"genus": sim["genus"], "species_level": sim["species"]},
+                           sd_log_size=0.2)
+    taxa = {"levels": "all", "vary": ["intercept"]}
+    corrected = build_model(table, _spec(taxa=taxa, size_error="known"), levels=LEVELS,
+                            log_reference_size=0.0)
+    naive = build_model(table, _spec(taxa=taxa), levels=LEVELS, log_reference_size=0.0)
+    fit = quick_sample(corrected, seed=5, draws=400, warmup=400)
+    plain = quick_sample(naive, seed=5, draws=400, warmup=400)
+    assert int(fit.sample_stats["diverging"].sum()) == 0
+    low, high = np.quantile(fit.posterior["within_exponent"].values, [0.05, 0.95])
+    assert low < 1.0 < high, (low, high)
+    low_b, high_b = np.quantile(fit.posterior["exponent"].values, [0.05, 0.95])
+    assert low_b < 0.75 < high_b, (low_b, high_b)
+    # without the error model the within slope is diluted: its interval lies below 1
+    assert float(np.quantile(plain.posterior["within_exponent"].values, 0.95)) < 1.0
 
 
 def test_separate_model_has_both_exponents_and_the_split_data():

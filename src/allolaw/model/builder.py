@@ -32,7 +32,7 @@ from allolaw.model.phylo_terms import ancestry_term
 from allolaw.model.scatter import scatter_level, scatter_term
 from allolaw.model.spec import ModelSpec
 from allolaw.model.terms import covariate_term, hinge, residual_sd, taxon_terms, true_log_size
-from allolaw.model.within import split_log_size, within_term
+from allolaw.model.within import latent_split, split_log_size, within_term
 from allolaw.phylogeny import Phylogeny
 
 __all__ = ["TRAIT", "build_model"]
@@ -168,7 +168,8 @@ def build_model(
         feature = {"intercept": pt.ones_like(centred_size), "exponent": centred_size,
                    "curvature": centred_size**2}
 
-        within_part = _within_split(model, data, spec, levels, feature, log_size_ref)
+        within_part = _within_split(model, data, spec, levels, feature, log_size_ref,
+                                    size.value)
         offset = sum((shared[t] * feature[t] for t in shared), within_part)
         for cov in spec.covariates:
             offset = offset + covariate_term(cov, inputs, pri["covariate"])
@@ -214,17 +215,22 @@ def _taxon_parts(spec: ModelSpec, varying: list[str], term_priors: dict[str, Any
 
 
 def _within_split(model: pm.Model, data: pd.DataFrame, spec: ModelSpec, levels: list[str],
-                  feature: dict[str, Any], log_size_ref: Any) -> Any:
+                  feature: dict[str, Any], log_size_ref: Any, true_size: Any) -> Any:
     """The within-species part of the law (model/within.py); the exponent then acts on means.
 
-    Without a split: zero. With one, ``feature["exponent"]`` becomes the centred group mean.
+    Without a split: zero. With one, ``feature["exponent"]`` becomes the centred group mean
+    (of the latent true sizes when size has error; the data keep the measured split).
     """
     if spec.within_species not in ("separate", "separate_by_species"):
         return pt.zeros_like(feature["exponent"])
     split = split_log_size(data, spec, levels=levels)
-    feature["exponent"] = pm.Data("group_mean_log_size", split.group_mean,
-                                  dims="species") - log_size_ref
-    return within_term(model, split, spec)
+    group_mean = pm.Data("group_mean_log_size", split.group_mean, dims="species")
+    if spec.size_error == "none":
+        feature["exponent"] = group_mean - log_size_ref
+        return within_term(model, split, spec)
+    true_mean, true_deviation = latent_split(split, true_size)
+    feature["exponent"] = true_mean - log_size_ref
+    return within_term(model, split, spec, deviation=true_deviation)
 
 
 def _trait_error(data: pd.DataFrame, inputs: Any, spec: ModelSpec, offset: Any, sigma: Any,

@@ -80,7 +80,9 @@ def _describe_shape(spec: ModelSpec) -> list[str]:
         )
     if spec.within_species != "together":
         out.append(
-            "Log size is split into the mean of its species (the innermost taxon level) and the "
+            "Log size"
+            + (" (the latent true log size)" if spec.size_error != "none" else "")
+            + " is split into the mean of its species (the innermost taxon level) and the "
             "deviation from that mean, each with its own slope: the exponent is the "
             "between-species exponent and the within-species exponent is estimated apart "
             "(van de Pol & Wright 2009)"

@@ -34,7 +34,8 @@ from allolaw.errors import UserError
 from allolaw.model.inputs import select_levels
 from allolaw.model.spec import ModelSpec
 
-__all__ = ["SizeSplit", "species_grouping_warning", "split_log_size", "within_term"]
+__all__ = ["SizeSplit", "latent_split", "species_grouping_warning", "split_log_size",
+           "within_term"]
 
 
 @dataclass(frozen=True)
@@ -67,13 +68,12 @@ def split_log_size(data: pd.DataFrame, spec: ModelSpec, *, levels: list[str]) ->
         Without a taxon level, or with a spec option the split does not support.
     """
     source = spec.source or spec.name
-    unsupported = [key for key, value in (("size_error", spec.size_error),
-                                          ("curvature", spec.curvature),
+    unsupported = [key for key, value in (("curvature", spec.curvature),
                                           ("breakpoint", spec.breakpoint)) if value != "none"]
     if unsupported:
         msg = (
             f"{source}: key 'within_species': bad value 'separate': cannot be combined with "
-            f"{', '.join(unsupported)} (the split uses observed log sizes and a straight law)"
+            f"{', '.join(unsupported)} (the split assumes a straight law)"
         )
         raise UserError(msg)
     if not levels:
@@ -114,8 +114,27 @@ def species_grouping_warning(spec: ModelSpec, *, levels: list[str], rows_are: st
     )
 
 
-def within_term(model: Any, split: SizeSplit, spec: ModelSpec) -> Any:
+def latent_split(split: SizeSplit, true_log_size: Any) -> tuple[Any, Any]:
+    """Group mean and deviation of the latent true log sizes (size measured with error).
+
+    The same split as :func:`split_log_size`, applied to the model's true log sizes rather
+    than the measured ones, so that the within-species slope acts on true deviations (a
+    slope on measured deviations is diluted by the within-group reliability; Fuller 1987,
+    §1.1). Returns two tensors, one value per row.
+    """
+    import pytensor.tensor as pt
+
+    counts = np.bincount(split.index, minlength=len(split.labels)).astype(float)
+    sums = pt.inc_subtensor(pt.zeros(len(split.labels))[split.index], true_log_size)
+    group_mean = (sums / counts)[split.index]
+    return group_mean, true_log_size - group_mean
+
+
+def within_term(model: Any, split: SizeSplit, spec: ModelSpec, deviation: Any = None) -> Any:
     """Add the within-group slope to ``model`` and return its part of the law, per row.
+
+    ``deviation`` replaces the measured deviations by a tensor (the latent ones of
+    :func:`latent_split`); the constant data ``within_log_size`` keeps the measured ones.
 
     Creates ``within_exponent`` and the data ``within_log_size``; with
     ``separate_by_species`` also ``within_exponent_sd__<level>``, the standard normal
@@ -127,7 +146,8 @@ def within_term(model: Any, split: SizeSplit, spec: ModelSpec) -> Any:
     pri = spec.priors
     within = pm.Normal("within_exponent", float(pri["within_exponent"]["mean"]),
                        float(pri["within_exponent"]["sd"]))
-    deviation = pm.Data("within_log_size", split.deviation, dims="species")
+    measured = pm.Data("within_log_size", split.deviation, dims="species")
+    deviation = measured if deviation is None else deviation
     if spec.within_species != "separate_by_species":
         return within * deviation
     level = split.level

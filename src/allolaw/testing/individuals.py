@@ -26,11 +26,13 @@ def simulate_individuals(*, n_species: int, per_species: int, between: float = 0
                          within: float = 1.0, intercept: float = 0.0, species_sd: float = 0.1,
                          sigma: float = 0.1, spread: float = 1.5, within_spread: float = 0.3,
                          n_genera: int = 4, within_sd: float = 0.0,
-                         seed: int = 0) -> pd.DataFrame:
+                         size_error_sd: float = 0.0, seed: int = 0) -> pd.DataFrame:
     """Return one row per individual: ``genus``, ``species``, ``log_size``, ``log_trait``.
 
     With ``within_sd`` > 0 each species has its own within exponent, normal around ``within``
-    with that SD (the truth is in the column ``true_within_exponent``).
+    with that SD (the truth is in the column ``true_within_exponent``). With
+    ``size_error_sd`` > 0 each individual's log size is measured with that normal error:
+    ``log_size`` is the measured value, ``true_log_size`` the true one.
 
     Balanced: every species has ``per_species`` individuals; species ``k`` is in genus
     ``k % n_genera``. Sizes are natural logs around 0 (the reference size is 1).
@@ -46,13 +48,17 @@ def simulate_individuals(*, n_species: int, per_species: int, between: float = 0
     log_trait = (intercept + between * mean_size[sp] + slopes[sp] * dev + offset[sp]
                  + rng.normal(0.0, sigma, sp.size))
     width = len(str(n_species - 1))
-    return pd.DataFrame({
+    table = pd.DataFrame({
         "genus": [f"G{k % n_genera}" for k in sp],
         "species": [f"G{k % n_genera} s{k:0{width}d}" for k in sp],
         "log_size": log_size,
         "log_trait": log_trait,
         "true_within_exponent": slopes[sp],
     })
+    if size_error_sd > 0:  # drawn last, so the other columns equal those without error
+        table["true_log_size"] = log_size
+        table["log_size"] = log_size + rng.normal(0.0, size_error_sd, sp.size)
+    return table
 
 
 def write_individuals_csv(path: Path, *, n_rows: int, per_species: int = 20,
