@@ -46,6 +46,9 @@ def fit_one(seed: int, model: str, draws: int, warmup: int) -> dict:
         config = load_config(REPO / "config" / "config.yaml", [f"results_dir={tmp}/results"])
         for source in config["datasets"][DATASET]["sources"]:
             source["file"] = str(data_dir / Path(source["file"]).name)
+        if config["datasets"][DATASET].get("tree"):  # this seed's tree, not the committed one
+            tree = Path(config["datasets"][DATASET]["tree"]).name
+            config["datasets"][DATASET]["tree"] = str(data_dir / tree)
         prepare_dataset(config, DATASET)
         data = read_clean(Path(tmp) / "results", DATASET)
         prepared = read_prepared(Path(tmp) / "results", DATASET)
