@@ -154,6 +154,17 @@ def test_no_species_with_a_replicate_covariance_keeps_errors_independent():
     assert "error_correlation" not in model.named_vars
 
 
+def test_table_with_every_sd_given_needs_no_covariance_column():
+    # SDs given per species (none estimated): ρ applies to no species, so the column of
+    # replicate covariances is not needed (e.g. the planning stage's simulated tables)
+    sim = _small()
+    data = sim.data.drop(columns=["replicate_cov_log_size_trait"]).assign(
+        sd_source_size="given", sd_source_trait="given")
+    model = build_model(data, parse_spec(dict(BOTH), name="b"), levels=[],
+                        log_reference_size=0.0)
+    assert "error_correlation" not in model.named_vars
+
+
 def test_missing_or_impossible_covariance_names_file_line_column_and_value():
     sim = _small()
     spec = parse_spec(dict(BOTH), name="b")

@@ -76,17 +76,20 @@ def read_paired_replicates(data: pd.DataFrame, errors: dict[str, Any], spec_name
     Raises
     ------
     UserError
-        If the covariance column is missing, or a covariance lies outside the bounds its two
+        If the covariance column is missing while some species has both SDs estimated, or
+        a covariance lies outside the bounds its two
         variances allow (|s_xy| ≤ s_x·s_y, up to rounding).
     """
     size, trait = errors["size"], errors["trait"]
     both = size.estimated & trait.estimated
-    if COVARIANCE_COLUMN not in data.columns:
+    if COVARIANCE_COLUMN not in data.columns and both.any():
         msg = (f"{source}: column '{COVARIANCE_COLUMN}' is needed by model spec '{spec_name}' "
                "(error_correlation: estimated) but is missing; prepare the dataset again, or "
                "set error_correlation: none")
         raise UserError(msg)
-    cov = pd.to_numeric(data[COVARIANCE_COLUMN], errors="coerce").to_numpy(dtype=float)
+    # a table whose SDs are all given (none estimated) needs no covariance column
+    cov = (pd.to_numeric(data[COVARIANCE_COLUMN], errors="coerce").to_numpy(dtype=float)
+           if COVARIANCE_COLUMN in data.columns else np.full(len(data), np.nan))
     observed = (both & (size.n >= 2) & (size.n == trait.n) & np.isfinite(cov)
                 & np.isfinite(size.variance) & np.isfinite(trait.variance))
     bound = np.sqrt(np.where(observed, size.variance * trait.variance, 0.0))
