@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from allolaw.model.builder import build_model
-from allolaw.model.law import _softplus_np
+from allolaw.model.law import smooth_hinge
 from allolaw.model.spec import load_spec, parse_spec
 from allolaw.testing import quick_sample, simulate_breakpoint, simulate_curvature, simulate_taxa
 from test_model_builder import MODELS, REPO
@@ -73,8 +73,8 @@ def test_breakpoint_model_recovers_break_location_and_both_exponents():
     group = pd.get_dummies(sim.data["group"], dtype=float).to_numpy()
     grid = np.linspace(-1.0, 2.0, 601)
     # the model's own hinge (zero at the reference size 0)
-    ssr = [sm.OLS(y, np.column_stack([group, x, _softplus_np(x - b, spec.hinge_width)
-                                      - _softplus_np(-b, spec.hinge_width)])).fit().ssr
+    ssr = [sm.OLS(y, np.column_stack([group, x, smooth_hinge(x - b, spec.hinge_width)
+                                      - smooth_hinge(-b, spec.hinge_width)])).fit().ssr
            for b in grid]
     least_squares_break = grid[int(np.argmin(ssr))]
     assert abs(np.median(post["break_log_size"].values) - least_squares_break) < 0.05

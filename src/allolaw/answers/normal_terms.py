@@ -26,6 +26,7 @@ import arviz as az
 import numpy as np
 
 from allolaw.answers.draws import flat, flat_matrix, scalar
+from allolaw.model.law import smooth_hinge
 
 __all__ = ["LawPieces", "innermost_level", "law_pieces", "self_check"]
 
@@ -98,8 +99,7 @@ class LawPieces:
             return None
         width = scalar(self.const["hinge_width"])
         brk = flat(self.post["break_log_size"])[:, None]
-        return width * (np.logaddexp(0.0, (self.x - brk) / width)
-                        - np.logaddexp(0.0, (self.ref - brk) / width))
+        return smooth_hinge(self.x - brk, width) - smooth_hinge(self.ref - brk, width)
 
 
 def law_pieces(idata: az.InferenceData, spec: dict[str, Any]) -> LawPieces | None:

@@ -12,7 +12,7 @@ import numpy as np
 
 from allolaw.errors import UserError
 
-__all__ = ["TAXON_TERMS", "expected_log_trait"]
+__all__ = ["TAXON_TERMS", "expected_log_trait", "smooth_hinge"]
 
 #: The terms of the law that can vary between taxa.
 TAXON_TERMS = ("intercept", "exponent", "curvature")
@@ -76,7 +76,7 @@ def expected_log_trait(
         pop_b = post["exponent"].values.reshape(-1)
         above = post["exponent_above"].values.reshape(-1) + (b - pop_b)
         out = out + (above - b)[:, None] * (
-            _softplus_np(grid[None, :] - brk, width) - _softplus_np(ref - brk, width)
+            smooth_hinge(grid[None, :] - brk, width) - smooth_hinge(ref - brk, width)
         )
     return out
 
@@ -86,5 +86,6 @@ def _scalar(var: Any) -> float:
     return float(np.asarray(var.values).reshape(-1)[0])
 
 
-def _softplus_np(d: np.ndarray, width: float) -> np.ndarray:
+def smooth_hinge(d: np.ndarray, width: float) -> np.ndarray:
+    """The break models' softplus hinge ``width · log(1 + exp(d / width))`` (NumPy)."""
     return width * np.logaddexp(0.0, d / width)
