@@ -49,6 +49,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--study", choices=("curvature", "break"), required=True)
     parser.add_argument("--seeds", type=int, default=20, help="seeds per scenario")
+    parser.add_argument("--seed-offset", type=int, default=0,
+                        help="added to every scenario's first seed (fresh seeds)")
     parser.add_argument("--draws", type=int, default=300)
     parser.add_argument("--warmup", type=int, default=300)
     parser.add_argument("--out", help="the study JSON (required unless a worker)")
@@ -70,7 +72,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         for k in range(args.seeds):
             for scenario in scenarios:
-                seed = FIRST_SEED[(args.study, scenario)] + k
+                seed = FIRST_SEED[(args.study, scenario)] + args.seed_offset + k
                 out = Path(tmp) / f"{scenario}_{seed}.json"
                 done = subprocess.run([sys.executable, __file__, "--study", args.study,
                                        "--worker", scenario, str(seed), "--record", str(out),
@@ -101,7 +103,7 @@ def _write(args: argparse.Namespace, scenarios: list[str], records: list[dict],
         "study": args.study,
         "seeds_requested": args.seeds,
         "seeds_run": seeds_done,
-        "first_seeds": {s: FIRST_SEED[(args.study, s)] for s in scenarios},
+        "first_seeds": {s: FIRST_SEED[(args.study, s)] + args.seed_offset for s in scenarios},
         "sampler": {"chains": 2, "draws": args.draws, "warmup": args.warmup,
                     "backend": "auto"},
         "counts": _counts(scenarios, records),

@@ -83,7 +83,8 @@ def break_verdict(scenario: str, seed: int, *, draws: int = 300, warmup: int = 3
     """Simulate one break scenario, fit the break model and its matched straight model.
 
     Invented data with known truth: 3 groups × 20 species, log sizes N(4, 2²), break at 4.
-    Returns a dict with ``verdict`` and the worst R-hat of the two fits.
+    Returns a dict with ``verdict``, the worst R-hat of the two fits, the Bayes factor and the
+    LOO gain of the break model with its SE (so that a rule can be studied on the records).
     """
     from allolaw.model.spec import parse_spec
     from allolaw.testing.data import simulate_law
@@ -99,8 +100,10 @@ def break_verdict(scenario: str, seed: int, *, draws: int = 300, warmup: int = 3
              "straight": parse_spec({"taxa": taxa}, name="straight")}
     fits = {name: _fit(sim, spec, 4.0, seed, draws, warmup) for name, spec in specs.items()}
     evidence = break_evidence(fits["break"], specs["break"])
-    verdict = judge_break(evidence, loo_difference(fits["break"], fits["straight"])).verdict
-    return {"verdict": verdict, "rhat_max": _worst_rhat(fits.values())}
+    loo = loo_difference(fits["break"], fits["straight"])
+    verdict = judge_break(evidence, loo).verdict
+    return {"verdict": verdict, "rhat_max": _worst_rhat(fits.values()),
+            "bf_break": evidence.bf_break, "elpd_gain": loo.elpd_diff, "elpd_gain_se": loo.se}
 
 
 def _fit(sim: Any, spec: Any, log_reference_size: float, seed: int, draws: int,
