@@ -185,12 +185,16 @@ def _evidence(bf):
 
 @pytest.mark.parametrize(("bf", "gain", "se", "verdict"), [
     (50.0, 12.0, 4.0, "supported"),
-    (50.0, 1.0, 3.0, "unclear"),      # Bayes factor alone
-    (2.0, 12.0, 4.0, "unclear"),      # LOO alone
+    (50.0, 1.0, 3.0, "supported"),     # strong Bayes factor, LOO gain small but positive
+    (50.0, -1.0, 3.0, "unclear"),      # strong Bayes factor, LOO loses: they disagree
+    (50.0, 0.0, 3.0, "unclear"),       # no gain at all counts with the losses
+    (9.9, 12.0, 4.0, "unclear"),       # a clear LOO gain alone
+    (2.0, 5.0, 4.0, "not supported"),  # LOO gain under 2 SE: not clear, Bayes factor weak
+    (2.0, 3.5, 1.0, "not supported"),  # over 2 SE but under 4 elpd: not clear
     (0.05, -1.0, 1.0, "not supported"),
-    (2.0, 2.0, 3.0, "not supported"),
+    (0.05, 12.0, 4.0, "unclear"),
 ])
-def test_break_verdict_needs_both_bayes_factor_and_loo(bf, gain, se, verdict):
+def test_break_verdict_is_the_bayes_factor_unless_loo_contradicts_it(bf, gain, se, verdict):
     out = judge_break(_evidence(bf), LooDifference(gain, se, 0, 0))
     assert out.verdict == verdict
     assert f"{gain:.1f}" in out.sentence

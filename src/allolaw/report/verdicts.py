@@ -105,11 +105,15 @@ def breakpoint_section(obj: Any, comp: Any = None) -> dict[str, Any] | None:
         if best.get("check_verdict") == "fail" or best.get("matched_check_verdict") == "fail":
             answer += " Caution: a check of these fits failed."
     return {"answer": answer, "supported": best["supported"], "rows": rows,
-            "rule": ("A break is called supported only when the Savage–Dickey Bayes factor "
-                     "for a change of exponent is at least 10 (strong on Jeffreys' scale) and "
-                     "the breakpoint model beats its matched model without the break by LOO "
-                     "by more than 2 standard errors and more than 4 elpd; not supported "
-                     "when neither favours the break; unclear otherwise.")}
+            "rule": ("A break is called supported when the Savage–Dickey Bayes factor for a "
+                     "change of exponent is at least 10 (strong on Jeffreys' scale) and the "
+                     "breakpoint model predicts left-out species at least as well as its "
+                     "matched model without the break (LOO gain above 0); unclear when the "
+                     "two disagree (a strong Bayes factor with a LOO loss, or a clear LOO gain "
+                     "of more than 2 standard errors and 4 elpd without a strong Bayes "
+                     "factor); not supported otherwise. The models are nested, so the Bayes "
+                     "factor carries the evidence; LOO differences below about 4 elpd have an "
+                     "unreliable standard error (Sivula et al. 2022).")}
 
 
 def average_section(obj: Any, primary: str = "") -> dict[str, Any] | None:
