@@ -246,3 +246,27 @@ def test_estimated_error_correlation_keeps_the_exponent_in_its_interval_on_a_fre
         d["replicate_var_log_size"].sum() * d["replicate_var_log_trait"].sum())
     rho = idata.posterior["error_correlation"].values.reshape(-1)
     assert np.quantile(rho, 0.05) <= pooled <= np.quantile(rho, 0.95), (pooled, rho.mean())
+
+
+@pytest.mark.slow  # ten fits: about 10 minutes on the shared machine; not in CI (seed 2077 is)
+@pytest.mark.mcmc
+def test_correlated_errors_exponent_intervals_cover_at_the_nominal_rate_over_ten_seeds():
+    # Invented data with known truth, as above; seeds 1923-1932 fixed before any of their fits
+    # except 1923 (the realisation above that misses), which is kept in on purpose. One seed
+    # is one draw of a 90% interval: a single miss says little (a calibrated interval misses
+    # one time in ten), so "does not push the exponent out of its interval" is judged as a
+    # rate. Calibrated 90% intervals give at least 7 hits of 10 with probability
+    # P(Binomial(10, 0.9) >= 7) = 0.987 (scipy.stats.binom). The mean of the posterior means
+    # must also lie within 3 standard errors (their spread / sqrt(10)) of the truth 0.75.
+    spec = load_spec(REPO_MODELS, "taxa_errors")
+    records = []
+    for seed in range(1923, 1933):
+        sim = simulate_correlated_errors(seed=seed)
+        model = build_model(sim.data, spec, levels=sim.levels, log_reference_size=0.0)
+        idata = quick_sample(model, seed=seed, draws=400, warmup=400, chains=2)
+        records.append(score_fit(idata, sim, spec))
+    hits = sum(r["covers"] for r in records)
+    means = np.array([r["mean"] for r in records])
+    assert scipy.stats.binom.sf(6, 10, 0.9) == pytest.approx(0.987, abs=5e-4)
+    assert hits >= 7, [(r["lo"], r["hi"]) for r in records]
+    assert abs(means.mean() - 0.75) < 3 * means.std(ddof=1) / np.sqrt(len(means)), means
