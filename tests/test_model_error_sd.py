@@ -258,6 +258,9 @@ def test_correlated_errors_exponent_intervals_cover_at_the_nominal_rate_over_ten
     # rate. Calibrated 90% intervals give at least 7 hits of 10 with probability
     # P(Binomial(10, 0.9) >= 7) = 0.987 (scipy.stats.binom). The mean of the posterior means
     # must also lie within 3 standard errors (their spread / sqrt(10)) of the truth 0.75.
+    # Measured 2026-12-04 (10 min): 9 of 10 cover (the miss is 1923), mean of the posterior
+    # means 0.752 (range 0.706-0.836), 3/4 the most probable named value in 9 of 10, no
+    # divergence, largest R-hat 1.015.
     spec = load_spec(REPO_MODELS, "taxa_errors")
     records = []
     for seed in range(1923, 1933):
