@@ -7,7 +7,15 @@ import pytest
 from scipy import stats
 
 from allolaw.answers.hypotheses import compare_hypotheses
-from allolaw.answers.within import compare_within_between, within_between_block, within_hypotheses
+from allolaw.answers.within import (
+    NO_DIFFERENCE,
+    SHALLOWER,
+    STEEPER,
+    compare_within_between,
+    judge_within_between,
+    within_between_block,
+    within_hypotheses,
+)
 
 
 def test_difference_and_its_probability_follow_the_draws():
@@ -174,3 +182,60 @@ def test_compare_stage_writes_within_rows_and_the_headline_block(tmp_path):
     prior = load_spec(repo / "models", "individuals_within").priors["within_exponent"]
     assert entry["within_probs"]["isometry"] == pytest.approx(_savage_dickey_probs(
         0.98, 0.05, (prior["mean"], prior["sd"]))["isometry"], abs=0.02)
+
+
+# --- the verdict on the difference: three outcomes from its central interval ---
+
+def _draws(within_mean: float, between_mean: float) -> az.InferenceData:
+    # Invented independent normal draws, SD 0.05 each: the difference is
+    # N(within_mean − between_mean, 0.0707) and its 90% interval is the mean ± 0.116
+    # (1.6449 × 0.0707, closed form).
+    rng = np.random.default_rng(2)
+    return az.from_dict(posterior={"within_exponent": rng.normal(within_mean, 0.05, (2, 20000)),
+                                   "exponent": rng.normal(between_mean, 0.05, (2, 20000))})
+
+
+def test_verdict_is_steeper_when_the_interval_of_the_difference_lies_above_zero():
+    # difference N(0.25, 0.0707): 90% interval about 0.134 to 0.366
+    result = compare_within_between(_draws(1.0, 0.75))
+    assert result["difference"]["low"] > 0
+    assert result["verdict"] == STEEPER
+
+
+def test_verdict_is_shallower_when_the_interval_of_the_difference_lies_below_zero():
+    # difference N(−0.25, 0.0707): 90% interval about −0.366 to −0.134
+    result = compare_within_between(_draws(0.75, 1.0))
+    assert result["difference"]["high"] < 0
+    assert result["verdict"] == SHALLOWER
+
+
+def test_verdict_is_no_difference_shown_when_the_interval_straddles_zero():
+    # difference N(0.05, 0.0707): positive median, 90% interval about −0.066 to 0.166, and
+    # P(within > between) = Φ(0.05 / 0.0707) = Φ(0.707) ≈ 0.760 (normal table, closed form).
+    # The sign of the median alone would have said "steeper".
+    result = compare_within_between(_draws(0.80, 0.75))
+    assert result["difference"]["median"] > 0
+    assert result["difference"]["low"] < 0 < result["difference"]["high"]
+    assert result["p_within_steeper"] == pytest.approx(0.760, abs=0.01)
+    assert result["verdict"] == NO_DIFFERENCE
+
+
+def test_verdict_follows_the_interval_asked_for():
+    # difference N(0.05, 0.0707): the central 40% interval is 0.05 ± 0.5244 × 0.0707, about
+    # 0.013 to 0.087 (closed form), above 0; the 90% interval is not.
+    result = compare_within_between(_draws(0.80, 0.75), interval=0.4)
+    assert result["difference"]["low"] == pytest.approx(0.05 - 0.5244 * 0.0707, abs=0.005)
+    assert result["verdict"] == STEEPER
+
+
+@pytest.mark.parametrize(("low", "high", "verdict"), [
+    (0.01, 0.2, STEEPER), (-0.2, -0.01, SHALLOWER), (-0.1, 0.1, NO_DIFFERENCE),
+    (0.0, 0.2, NO_DIFFERENCE), (-0.2, 0.0, NO_DIFFERENCE)])
+def test_verdict_rule_on_interval_ends_counts_an_end_at_zero_as_no_difference(low, high, verdict):
+    assert judge_within_between(low, high) == verdict
+
+
+def test_headline_block_carries_the_verdict():
+    idata = _split_fit(within_mean=0.76, between_mean=0.75, sd=0.05)
+    block = within_between_block({"split": idata}, pd.DataFrame(), {})
+    assert block["models"]["split"]["verdict"] == NO_DIFFERENCE
