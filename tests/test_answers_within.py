@@ -7,7 +7,15 @@ import pytest
 from scipy import stats
 
 from allolaw.answers.hypotheses import compare_hypotheses
-from allolaw.answers.within import compare_within_between, within_between_block, within_hypotheses
+from allolaw.answers.within import (
+    NO_DIFFERENCE,
+    SHALLOWER,
+    STEEPER,
+    compare_within_between,
+    judge_within_between,
+    within_between_block,
+    within_hypotheses,
+)
 
 
 def test_difference_and_its_probability_follow_the_draws():
@@ -174,3 +182,120 @@ def test_compare_stage_writes_within_rows_and_the_headline_block(tmp_path):
     prior = load_spec(repo / "models", "individuals_within").priors["within_exponent"]
     assert entry["within_probs"]["isometry"] == pytest.approx(_savage_dickey_probs(
         0.98, 0.05, (prior["mean"], prior["sd"]))["isometry"], abs=0.02)
+
+
+# --- the verdict on the difference: three outcomes from its central interval ---
+
+def _draws(within_mean: float, between_mean: float) -> az.InferenceData:
+    # Invented independent normal draws, SD 0.05 each: the difference is
+    # N(within_mean − between_mean, 0.0707) and its 90% interval is the mean ± 0.116
+    # (1.6449 × 0.0707, closed form).
+    rng = np.random.default_rng(2)
+    return az.from_dict(posterior={"within_exponent": rng.normal(within_mean, 0.05, (2, 20000)),
+                                   "exponent": rng.normal(between_mean, 0.05, (2, 20000))})
+
+
+def test_verdict_is_steeper_when_the_interval_of_the_difference_lies_above_zero():
+    # difference N(0.25, 0.0707): 90% interval about 0.134 to 0.366
+    result = compare_within_between(_draws(1.0, 0.75))
+    assert result["difference"]["low"] > 0
+    assert result["verdict"] == STEEPER
+
+
+def test_verdict_is_shallower_when_the_interval_of_the_difference_lies_below_zero():
+    # difference N(−0.25, 0.0707): 90% interval about −0.366 to −0.134
+    result = compare_within_between(_draws(0.75, 1.0))
+    assert result["difference"]["high"] < 0
+    assert result["verdict"] == SHALLOWER
+
+
+def test_verdict_is_no_difference_shown_when_the_interval_straddles_zero():
+    # difference N(0.05, 0.0707): positive median, 90% interval about −0.066 to 0.166, and
+    # P(within > between) = Φ(0.05 / 0.0707) = Φ(0.707) ≈ 0.760 (normal table, closed form).
+    # The sign of the median alone would have said "steeper".
+    result = compare_within_between(_draws(0.80, 0.75))
+    assert result["difference"]["median"] > 0
+    assert result["difference"]["low"] < 0 < result["difference"]["high"]
+    assert result["p_within_steeper"] == pytest.approx(0.760, abs=0.01)
+    assert result["verdict"] == NO_DIFFERENCE
+
+
+def test_verdict_follows_the_interval_asked_for():
+    # difference N(0.05, 0.0707): the central 40% interval is 0.05 ± 0.5244 × 0.0707, about
+    # 0.013 to 0.087 (closed form), above 0; the 90% interval is not.
+    result = compare_within_between(_draws(0.80, 0.75), interval=0.4)
+    assert result["difference"]["low"] == pytest.approx(0.05 - 0.5244 * 0.0707, abs=0.005)
+    assert result["verdict"] == STEEPER
+
+
+@pytest.mark.parametrize(("low", "high", "verdict"), [
+    (0.01, 0.2, STEEPER), (-0.2, -0.01, SHALLOWER), (-0.1, 0.1, NO_DIFFERENCE),
+    (0.0, 0.2, NO_DIFFERENCE), (-0.2, 0.0, NO_DIFFERENCE)])
+def test_verdict_rule_on_interval_ends_counts_an_end_at_zero_as_no_difference(low, high, verdict):
+    assert judge_within_between(low, high) == verdict
+
+
+def test_headline_block_carries_the_verdict():
+    idata = _split_fit(within_mean=0.76, between_mean=0.75, sd=0.05)
+    block = within_between_block({"split": idata}, pd.DataFrame(), {})
+    assert block["models"]["split"]["verdict"] == NO_DIFFERENCE
+
+
+# --- the verdict on real fits, under its null and its alternative (slow) ---
+
+def _mcmc_verdicts(within: float, seeds: range) -> list[str]:
+    # Invented individuals with known truth (allolaw.testing.individuals): 24 species × 6
+    # individuals, between-species exponent 0.75, within-species exponent `within`, species
+    # intercepts deviating with SD 0.1; fitted like
+    # tests/test_model_within.py::test_within_1_and_between_0_75_are_recovered_and_told_apart
+    # (species random intercept, 2 chains, 400 warm-up + 400 draws).
+    from allolaw.model.builder import build_model
+    from allolaw.model.spec import parse_spec
+    from allolaw.testing import as_clean_table, quick_sample
+    from allolaw.testing.individuals import simulate_individuals
+
+    spec = parse_spec({"taxa": {"levels": "all", "vary": ["intercept"]},
+                       "within_species": "separate"}, name="within")
+    verdicts = []
+    for seed in seeds:
+        sim = simulate_individuals(n_species=24, per_species=6, between=0.75, within=within,
+                                   seed=seed)
+        labels = [f"{s} #{k}" for k, s in enumerate(sim["species"])]
+        table = as_clean_table(labels, sim["log_size"].to_numpy(), sim["log_trait"].to_numpy(),
+                               taxa={"genus": sim["genus"], "species_level": sim["species"]})
+        model = build_model(table, spec, levels=["genus", "species_level"],
+                            log_reference_size=0.0)
+        idata = quick_sample(model, seed=seed, draws=400, warmup=400)
+        verdicts.append(compare_within_between(idata)["verdict"])
+    return verdicts
+
+
+@pytest.mark.slow  # 20 fits, 246 s measured (2 shared cores, nice 10)
+@pytest.mark.mcmc
+def test_mcmc_within_verdict_under_equal_and_different_exponents_over_10_seeds():
+    # Null, within = between = 0.75: with calibrated 90% intervals each seed says "steeper" or
+    # "shallower" with probability 0.10, so "no difference shown" in ≥ 7 of 10 has probability
+    # P(Binomial(10, 0.9) ≥ 7) = 0.987 (scipy.stats.binom.sf(6, 10, 0.9)).
+    # Measured: "no difference shown" in 7 of 10 (seed 504 "shallower", 506 and 507
+    # "steeper"), at the bound; 3 or more directional verdicts of 10 has probability 0.070
+    # with calibrated intervals (scipy.stats.binom.sf(2, 10, 0.1)).
+    null = _mcmc_verdicts(0.75, range(500, 510))
+    assert null.count(NO_DIFFERENCE) >= 7, null
+    # Alternative, within 1.0 and between 0.75: the difference 0.25 is about 4 times the
+    # half-width of its 90% interval in this design (half-widths about 0.06 measured on
+    # seeds 0 and 1), so "steeper" is expected every time. Measured: "steeper" in 10 of 10.
+    alternative = _mcmc_verdicts(1.0, range(600, 610))
+    assert alternative.count(STEEPER) >= 9, alternative
+
+
+@pytest.mark.slow  # 6 fits, 83 s measured (2 shared cores, nice 10)
+@pytest.mark.mcmc
+def test_mcmc_within_verdict_under_equal_and_different_exponents_over_3_seeds():
+    # The first 3 seeds of the 10-seed study. Null: a directional verdict in at most 1 of 3
+    # has probability 1 − P(Binomial(3, 0.1) ≥ 2) = 0.972 with calibrated 90% intervals
+    # (scipy.stats.binom.cdf(1, 3, 0.1)). Measured: no directional verdict of 3 under the
+    # null, "steeper" in 3 of 3 under the alternative.
+    null = _mcmc_verdicts(0.75, range(500, 503))
+    assert sum(v in (STEEPER, SHALLOWER) for v in null) <= 1, null
+    alternative = _mcmc_verdicts(1.0, range(600, 603))
+    assert alternative.count(STEEPER) >= 2, alternative

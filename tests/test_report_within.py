@@ -41,6 +41,7 @@ def _add_split(config: dict) -> Path:
         "between": {"median": 0.75, "low": 0.70, "high": 0.80},
         "difference": {"median": 0.5, "low": 0.44, "high": 0.56},
         "p_within_steeper": 1.0,
+        "verdict": "steeper",
         "within_probs": {"metabolic law": 0.01, "isometry": 0.2, "another value": 0.79},
         "between_probs": {"metabolic law": 0.61, "isometry": 0.001, "another value": 0.389},
         "check_verdict": "pass"}}}
@@ -117,6 +118,48 @@ def test_within_line_has_the_median_within_slope_on_log_axes(pages):
     # through the mean point: the line at the mean log size is the mean log trait
     at_mean = ly[0] + WITHIN_SLOPE * (first["log_size"].mean() - lx[0])
     assert at_mean == pytest.approx(first["log_trait"].mean())
+
+
+def _entry(low: float, median: float, high: float, verdict: str | None, p: float) -> dict:
+    entry = {"interval": 0.9,
+             "within": {"median": 0.77, "low": 0.70, "high": 0.84},
+             "between": {"median": 0.75, "low": 0.70, "high": 0.80},
+             "difference": {"median": median, "low": low, "high": high},
+             "p_within_steeper": p, "within_probs": {"three quarters": 0.6},
+             "between_probs": {"three quarters": 0.7}, "check_verdict": "pass"}
+    if verdict is not None:
+        entry["verdict"] = verdict
+    return entry
+
+
+def _answer(entry: dict) -> str:
+    head = {"within_between": {"applicable": True, "models": {"m": entry}}}
+    return within_section(head, "m")["answer"]
+
+
+def test_sentence_says_no_difference_shown_when_the_interval_holds_zero():
+    # A positive median with an interval across 0: the old wording said "steeper by 0.020".
+    text = _answer(_entry(-0.06, 0.02, 0.10, "no difference shown", 0.64))
+    assert "steeper by" not in text
+    assert "shallower by" not in text
+    assert "do not show the two exponents to differ" in text
+    assert "difference within − between 0.020, 90% interval -0.060 to 0.100" in text
+    assert "is steeper than the between-species exponent is 0.640" in text
+    assert "within species three quarters (probability 0.600)" in text
+
+
+def test_sentence_says_shallower_when_the_verdict_is_shallower():
+    text = _answer(_entry(-0.30, -0.20, -0.10, "shallower", 0.001))
+    assert "The within-species exponent is shallower by 0.200" in text
+    assert "do not show" not in text
+
+
+def test_sentence_without_a_recorded_verdict_states_no_direction():
+    # headline.json written before the verdict existed: numbers, no direction claimed
+    text = _answer(_entry(0.10, 0.20, 0.30, None, 1.0))
+    assert "steeper by" not in text
+    assert "No verdict on the difference was recorded" in text
+    assert "90% interval 0.100 to 0.300" in text
 
 
 def test_section_is_none_when_headline_says_not_applicable():

@@ -4,6 +4,11 @@ Reads the posterior of a model built with ``within_species: separate`` (or
 ``separate_by_species``): ``within_exponent`` (the slope of log size around its species mean)
 and ``exponent`` (the slope of species-mean log size). NumPy only.
 
+The verdict on the difference ``within_exponent − exponent`` has three outcomes
+(:func:`judge_within_between`): "steeper" when its central interval lies above 0, "shallower"
+when it lies below 0, otherwise "no difference shown" (the data do not show the two exponents
+to differ; this does not show that they are equal).
+
 References
 ----------
 van de Pol, M. & Wright, J. (2009). A simple method for distinguishing within- versus
@@ -22,10 +27,16 @@ from allolaw.answers.draws import flat
 from allolaw.answers.hypotheses import COLUMNS, draws_hypotheses
 from allolaw.answers.node_tree import spec_dict
 
-__all__ = ["compare_within_between", "within_between_block", "within_hypotheses"]
+__all__ = ["NO_DIFFERENCE", "SHALLOWER", "STEEPER", "compare_within_between",
+           "judge_within_between", "within_between_block", "within_hypotheses"]
 
 #: The ``parameter`` of the within-species rows of ``hypotheses.csv``.
 WITHIN = "within_exponent"
+
+#: Verdicts on the difference within − between (the ``verdict`` of the comparison).
+STEEPER = "steeper"
+SHALLOWER = "shallower"
+NO_DIFFERENCE = "no difference shown"
 
 
 def compare_within_between(idata: Any, *, interval: float = 0.9) -> dict[str, Any] | None:
@@ -42,7 +53,8 @@ def compare_within_between(idata: Any, *, interval: float = 0.9) -> dict[str, An
     -------
     dict or None
         ``within``, ``between`` and ``difference`` (each ``median``, ``low``, ``high``) and
-        ``p_within_steeper`` = P(within exponent > between exponent), the share of draws.
+        ``p_within_steeper`` = P(within exponent > between exponent), the share of draws, and
+        ``verdict``, :func:`judge_within_between` of the difference's central interval.
     """
     posterior = idata.posterior
     if "within_exponent" not in posterior or "exponent" not in posterior:
@@ -56,13 +68,37 @@ def compare_within_between(idata: Any, *, interval: float = 0.9) -> dict[str, An
         low, median, high = np.quantile(draws, [tail, 0.5, 1.0 - tail])
         return {"median": float(median), "low": float(low), "high": float(high)}
 
+    diff = summary(difference)
     return {
         "interval": interval,
         "within": summary(within),
         "between": summary(between),
-        "difference": summary(difference),
+        "difference": diff,
         "p_within_steeper": float(np.mean(difference > 0)),
+        "verdict": judge_within_between(diff["low"], diff["high"]),
     }
+
+
+def judge_within_between(low: float, high: float) -> str:
+    """Verdict on within − between from the ends of its central posterior interval.
+
+    Parameters
+    ----------
+    low, high
+        Lower and upper end of the central interval of the difference within − between.
+
+    Returns
+    -------
+    str
+        :data:`STEEPER` when the interval lies above 0 (``low > 0``), :data:`SHALLOWER` when it
+        lies below 0 (``high < 0``), else :data:`NO_DIFFERENCE`. With a calibrated 90% interval
+        and equal exponents, "steeper" or "shallower" is said with probability about 0.10.
+    """
+    if low > 0:
+        return STEEPER
+    if high < 0:
+        return SHALLOWER
+    return NO_DIFFERENCE
 
 
 def within_hypotheses(idata: Any, spec: Any, settings: dict[str, Any]) -> pd.DataFrame:

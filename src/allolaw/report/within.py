@@ -2,6 +2,9 @@
 
 :func:`within_section` turns the ``within_between`` block of ``headline.json``
 (:func:`allolaw.answers.within.within_between_block`) into plain sentences and table rows;
+the sentence states the entry's ``verdict`` ("steeper", "shallower" or "no difference shown",
+decided in the answers stage from the difference's central interval), never a direction the
+interval does not support;
 :func:`within_lines` draws, for a fit with a within/between split, one short line per species
 through its mean log size and mean log trait with the within-species exponent, beside the
 between-species law (the population law of species means, drawn by
@@ -43,9 +46,9 @@ def within_section(head: dict[str, Any] | None, primary: str) -> dict[str, Any] 
     dict or None
         ``answer`` (the primary model's sentence, else the first model's), ``rows`` (one per
         model with a split: ``model``, ``within``, ``between``, ``difference``,
-        ``p_within_steeper``, ``sentence``, ``check_verdict``), ``primary_split`` (the primary
-        model has the split: its population exponent is the between-species one),
-        ``interval``.
+        ``p_within_steeper``, ``verdict``, ``sentence``, ``check_verdict``), ``primary_split``
+        (the primary model has the split: its population exponent is the between-species
+        one), ``interval``.
     """
     block = (head or {}).get("within_between") or {}
     if not block.get("applicable") or not block.get("models"):
@@ -65,15 +68,24 @@ def _sentence(entry: dict[str, Any]) -> str:
     level = f"{100 * float(entry.get('interval') or 0.9):.0f}%"
     w, b, d = entry["within"], entry["between"], entry["difference"]
     p = float(entry["p_within_steeper"])
-    direction = "steeper" if d["median"] >= 0 else "shallower"
+    numbers = (f"difference within − between {fmt(d['median'])}, {level} interval "
+               f"{fmt(d['low'])} to {fmt(d['high'])}")
+    verdict = entry.get("verdict")
+    if verdict in ("steeper", "shallower"):
+        told = (f"The within-species exponent is {verdict} by {fmt(abs(d['median']))} "
+                f"({numbers})")
+    elif verdict == "no difference shown":
+        told = (f"The data do not show the two exponents to differ: the {level} interval of "
+                f"the difference includes 0 ({numbers})")
+    else:
+        told = (f"No verdict on the difference was recorded (headline.json written before "
+                f"verdicts; rerun the compare stage) ({numbers})")
     text = (
         f"Within species, the trait scales with size with exponent {fmt(w['median'])} "
         f"({level} interval {fmt(w['low'])} to {fmt(w['high'])}); between species (the law of "
         f"species means) with exponent {fmt(b['median'])} ({fmt(b['low'])} to "
-        f"{fmt(b['high'])}). The within-species exponent is {direction} by "
-        f"{fmt(abs(d['median']))} (difference within − between {fmt(d['median'])}, "
-        f"{level} interval {fmt(d['low'])} to {fmt(d['high'])}); the probability that it "
-        f"is steeper than the between-species exponent is {p:.3f}."
+        f"{fmt(b['high'])}). {told}; the probability that the within-species "
+        f"exponent is steeper than the between-species exponent is {p:.3f}."
     )
     tops = [(label, _top(entry.get(key) or {}))
             for label, key in (("within species", "within_probs"),
