@@ -206,9 +206,9 @@ def build_results(root: Path, *, seed: int = 3) -> dict:
                                     "n_bad_k_without": 0},
             "verdict": "not supported", "bayes_says": "undecided", "loo_says": "small gain",
             "sentence": "The break is not supported: the Bayes factor does not favour it and "
-                        "LOO shows no clear gain from it. Bayes factor 2.4 for a change of exponent at the break (posterior "
-                        "probability 0.71 from a prior 0.50); LOO gain of the break model 1.2 "
-                        "± 1.5 elpd.",
+                        "LOO shows no clear gain from it. Bayes factor 2.4 for a change of "
+                        "exponent at the break (posterior probability 0.71 from a prior "
+                        "0.50); LOO gain of the break model 1.2 ± 1.5 elpd.",
         }},
     }))
     # as allolaw.answers.verdicts.headline_block writes it (numbers invented)
