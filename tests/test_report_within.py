@@ -79,6 +79,13 @@ def test_page_states_both_exponents_their_difference_and_its_probability(pages):
     assert lead.startswith("Between-species exponent (species means)")
 
 
+def test_within_table_has_the_verdict_of_each_model(pages):
+    _, split, _ = pages
+    table = re.search(r'<table id="table-within".*?</table>', split, re.S).group(0)
+    assert "<th>verdict (within vs between)</th>" in table
+    assert '<td class="within-verdict">steeper</td>' in table
+
+
 def test_page_without_a_split_says_nothing_about_within_species(pages):
     plain, _, _ = pages
     assert "headline-within" not in plain
