@@ -23,6 +23,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from allolaw.answers.within import NO_DIFFERENCE, SHALLOWER, STEEPER
 from allolaw.report.formatting import fmt
 from allolaw.report.svg import Band
 
@@ -71,10 +72,10 @@ def _sentence(entry: dict[str, Any]) -> str:
     numbers = (f"difference within − between {fmt(d['median'])}, {level} interval "
                f"{fmt(d['low'])} to {fmt(d['high'])}")
     verdict = entry.get("verdict")
-    if verdict in ("steeper", "shallower"):
+    if verdict in (STEEPER, SHALLOWER):
         told = (f"The within-species exponent is {verdict} by {fmt(abs(d['median']))} "
                 f"({numbers})")
-    elif verdict == "no difference shown":
+    elif verdict == NO_DIFFERENCE:
         told = (f"The data do not show the two exponents to differ: the {level} interval of "
                 f"the difference includes 0 ({numbers})")
     else:
