@@ -89,6 +89,9 @@ def test_fit_model_returns_every_group_with_model_dims(tiny_fit: az.InferenceDat
     assert "diverging" in tiny_fit.sample_stats
     for key in ("backend", "seed", "compile_seconds", "sampling_seconds", "wall_seconds"):
         assert key in tiny_fit.attrs
+    # neither warm-up draws nor the sampler's unconstrained copies (sigma_log__) are kept
+    assert not {"warmup_posterior", "warmup_sample_stats"} & groups
+    assert not [n for n in post.data_vars if str(n).endswith("__")]
 
 
 @pytest.mark.mcmc
@@ -153,6 +156,9 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
                                   reference.sample_stats["diverging"].values)
     for group in ("constant_data", "observed_data"):
         assert getattr(ours, group).equals(getattr(reference, group))
+    # the warm-up draws are not kept (memory: they were dropped unread)
+    assert "warmup_posterior" in reference.groups()
+    assert not {"warmup_posterior", "warmup_sample_stats"} & set(ours.groups())
 
 
 @pytest.mark.mcmc
