@@ -6,6 +6,7 @@ import time
 import types
 
 import arviz as az
+import pytest
 
 from allolaw import paths
 from allolaw.checks.dataset import check_dataset_model
@@ -145,6 +146,25 @@ def test_extension_with_a_mass_matrix_from_the_draws_is_named_in_the_finding(
     assert "draws' covariance (dense)" in finding
     assert "tuned again over 200 steps" in finding
     assert "no new warm-up" not in finding
+
+
+@pytest.mark.parametrize(("shift", "said"), [(5.0, True), (0.0, False)])
+def test_extension_off_is_said_only_when_the_check_falls_short(tmp_path, monkeypatch,
+                                                                shift, said):
+    config = _config(tmp_path)
+    idata = line_posterior(seed=13, shift_chain=shift)
+    record = {"status": "off", "reason": "chain extension is off (sampler.extension_draws is 0)",
+              "backend": "nutpie", "extra_draws_per_chain": 0, "draws_per_chain_before": 1000,
+              "draws_per_chain_after": 1000, "before": None, "after": None}
+    idata.attrs["chain_extension"] = json.dumps(record)
+    _write_fit(config, idata)
+    monkeypatch.setitem(sys.modules, "allolaw.model.fitting", types.SimpleNamespace())
+    verdict = check_dataset_model(config, "toy", "pooled")
+    report = json.loads(paths.check_path(config["results_dir"], "toy", "pooled").read_text())
+    assert (verdict == "fail") is said
+    assert report["extension"] == record
+    assert any("not extended: chain extension is off" in f
+               for f in report["findings"]) is said
 
 
 def test_fit_without_an_extension_record_writes_null(tmp_path, monkeypatch):

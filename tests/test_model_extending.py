@@ -56,11 +56,21 @@ def test_short_run_without_an_adapted_state_is_reported_not_extended():
     assert "bulk ESS" in record["reason"]
 
 
-def test_short_run_with_extension_off_says_so():
-    _, record = extend_if_short(None, _iid(2, 50, seed=3), None, extra_draws=0, seed=1,
-                                backend="nutpie", target_acceptance=0.9)
+def test_short_run_with_extension_off_says_so_without_computing_r_hat(monkeypatch):
+    from allolaw.model import extending
+
+    def refuse(posterior):
+        raise AssertionError("R-hat and ESS computed with the extension off")
+
+    monkeypatch.setattr(extending, "convergence_numbers", refuse)
+    idata = _iid(2, 50, seed=3)
+    out, record = extend_if_short(None, idata, None, extra_draws=0, seed=1,
+                                  backend="nutpie", target_acceptance=0.9)
+    assert out is idata
     assert record["status"] == "off"
     assert "extension_draws is 0" in record["reason"]
+    assert record["before"] is None
+    assert record["after"] is None
 
 
 def test_low_rank_fit_without_its_unconstrained_draws_is_reported_not_extended():

@@ -90,7 +90,7 @@ def check_dataset_model(
     # first among the findings, so the page shows them with the checks
     findings[:0] = json.loads(str(idata.attrs.get("warnings") or "[]"))
     extension = chain_extension(idata)
-    if extension is not None and extension.get("status") != "not needed":
+    if _extension_worth_saying(extension, result.verdict):
         findings.insert(0, _extension_finding(extension))
     groups = innermost_groups(config, dataset, idata)
     ppc = predictive_checks(idata, groups=groups)
@@ -123,6 +123,16 @@ def chain_extension(idata: Any) -> dict[str, Any] | None:
     if not raw:
         return None
     return json.loads(raw)
+
+
+def _extension_worth_saying(ext: dict[str, Any] | None, verdict: str) -> bool:
+    # "off" records made since the fit stopped computing R-hat and ESS when the extension is
+    # off carry no numbers: said only when this check's own diagnostics fall short
+    if ext is None or ext.get("status") == "not needed":
+        return False
+    if ext.get("status") == "off" and ext.get("before") is None:
+        return verdict != "pass"
+    return True
 
 
 def _extension_finding(ext: dict[str, Any]) -> str:
