@@ -113,7 +113,8 @@ def main() -> None:
             growth[key] = float(np.polyfit(logn, np.log([r[key] for r in rows]), 1)[0])
             print(f"growth exponent of {key} against tips: {growth[key]:.2f}")
     for r in rows:
-        print(f"{r['tips']} tips: backend {r['backend']}; {r['compile_cache']}")
+        print(f"{r['tips']} tips: backend {r['backend']} (log density compiled with "
+              f"{r.get('compiler') or 'n/a'}); {r['compile_cache']}")
     load_end = _load_average()
     print(f"load average (1, 5, 15 min): at start {load_start}, at end {load_end}")
     if args.json:
@@ -184,6 +185,7 @@ def _fit_one(n: int, args: argparse.Namespace) -> dict:
         "draws": args.draws, "warmup": args.warmup, "chains": args.chains, "cores": args.cores,
         "backend": idata.attrs["backend"], "backend_fallback": idata.attrs["backend_fallback"],
         "compile_cache": idata.attrs["compile_cache"],
+        "compiler": idata.attrs.get("compiler", ""),
         "build_s": t1 - t0,
         "compile_s": float(idata.attrs["compile_seconds"]),
         "sample_s": float(idata.attrs["sampling_seconds"]),

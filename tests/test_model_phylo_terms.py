@@ -234,3 +234,50 @@ def _file_sha256(path):
     import hashlib
 
     return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_nutpie_compiles_with_numba_from_the_tree_size_threshold_on(monkeypatch):
+    from allolaw.model import compiling
+    from allolaw.model.phylo_terms import tree_species
+
+    monkeypatch.delenv("ALLOLAW_NUTPIE_BACKEND", raising=False)
+    limit = compiling.NUMBA_FROM_TREE_SPECIES
+    assert compiling.nutpie_compiler(0) == "jax"
+    assert compiling.nutpie_compiler(limit - 1) == "jax"
+    assert compiling.nutpie_compiler(limit) == "numba"
+    monkeypatch.setenv("ALLOLAW_NUTPIE_BACKEND", "jax")  # the override wins
+    assert compiling.nutpie_compiler(limit) == "jax"
+    tree, data = _dataset(12, seed=3)
+    with_tree = build_model(data, _spec(shared_ancestry="signal"), levels=[],
+                            log_reference_size=0.0, phylogeny=tree)
+    without = build_model(data, _spec(), levels=[], log_reference_size=0.0)
+    assert tree_species(with_tree) == 12
+    assert tree_species(without) == 0
+
+
+@pytest.mark.slow  # numba compiles the tree messages: about two minutes
+@pytest.mark.mcmc
+def test_tree_model_over_the_threshold_is_fitted_with_numba_and_gives_the_same_answer(
+        monkeypatch):
+    # same data and seed through both compilers: the draws differ (different floating-point
+    # order), the posterior does not beyond Monte Carlo error
+    from allolaw.model import compiling
+    from allolaw.model.sampling import fit_model
+
+    monkeypatch.delenv("ALLOLAW_NUTPIE_BACKEND", raising=False)
+    tree, data = _dataset(40, seed=7, lam=0.8, exponent=0.75)
+    spec = _spec(shared_ancestry="signal")
+    fits = {}
+    for limit in (10**9, 10):
+        monkeypatch.setattr(compiling, "NUMBA_FROM_TREE_SPECIES", limit)
+        model = build_model(data, spec, levels=[], log_reference_size=0.0, phylogeny=tree)
+        idata = fit_model(model, chains=2, draws=400, warmup=400, seed=8, backend="nutpie",
+                          prior_draws=20)
+        fits[idata.attrs["compiler"]] = idata
+    assert set(fits) == {"jax", "numba"}
+    jax_b = fits["jax"].posterior["exponent"]
+    numba_b = fits["numba"].posterior["exponent"]
+    se = float(np.hypot(az.mcse(jax_b).values, az.mcse(numba_b).values))
+    assert abs(float(jax_b.mean()) - float(numba_b.mean())) < 4 * se
+    assert fits["numba"].log_likelihood["trait"].shape == (2, 400, 40)
+    assert int(fits["numba"].sample_stats["diverging"].sum()) == 0

@@ -9,8 +9,31 @@ import os
 
 from allolaw.runtime import LIGHTER_REWRITES
 
-#: How nutpie compiles the log density (see benchmarks/README.md for the measured choice).
+#: How nutpie compiles the log density by default (see benchmarks/README.md for the measured
+#: choice); the environment variable ALLOLAW_NUTPIE_BACKEND (jax or numba) forces one for
+#: every fit.
 NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BACKEND", "jax")}
+
+#: Models with shared ancestry on a tree of at least this many species compile with numba.
+#: Their log density runs Gaussian messages level by level through the tree; XLA's gathers
+#: and scatters cost more per gradient there than numba's loops (10,000 tips, density and
+#: gradient of residuals and sizes: JAX 2.95 ms, numba 1.1-1.25 ms per call; whole fit,
+#: 4 x (1000 + 1000), cold caches: sampling 683 s vs 304 s, compile 12 s vs 209 s;
+#: benchmarks/README.md "Whole fits by tree size"). Below it the numba compile costs more
+#: than it saves.
+NUMBA_FROM_TREE_SPECIES = 3000
+
+
+def nutpie_compiler(tree_species: int) -> str:
+    """How nutpie compiles a model whose tree has ``tree_species`` species (0: no tree).
+
+    ``numba`` from :data:`NUMBA_FROM_TREE_SPECIES` species on, else ``jax``; the environment
+    variable ``ALLOLAW_NUTPIE_BACKEND`` overrides both.
+    """
+    forced = os.environ.get("ALLOLAW_NUTPIE_BACKEND")
+    if forced:
+        return forced
+    return "numba" if tree_species >= NUMBA_FROM_TREE_SPECIES else NUTPIE_COMPILE["backend"]
 
 # The log-likelihood and prior draws are computed once per fit, so their compile time is
 # pure overhead: with PyTensor's default C mode a cold cache cost 32-35 s each on the

@@ -62,6 +62,7 @@ __all__ = [
     "scale_to_unit_height",
     "simulate_residuals",
     "size_tree_population",
+    "tree_species",
 ]
 
 #: Name of Pagel's λ in the posterior.
@@ -220,6 +221,12 @@ def simulate_residuals(sigma: float, lam: float, phylogeny: Phylogeny, *,
 def has_ancestry(model: pm.Model) -> bool:
     """True when ``model`` has a trait with tree-correlated residuals."""
     return getattr(model, _ATTRIBUTE, None) is not None
+
+
+def tree_species(model: pm.Model) -> int:
+    """Number of species on the tree of a model with shared ancestry (0 without)."""
+    term = getattr(model, _ATTRIBUTE, None)
+    return 0 if term is None else int(term.phylogeny.n_species)
 
 
 def add_ancestry_log_likelihood(idata: az.InferenceData, model: pm.Model, name: str) -> None:

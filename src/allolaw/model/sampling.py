@@ -38,6 +38,7 @@ from allolaw.model.compiling import (
     describe_cache_use,
     jax_cache_counts,
     lighter_jax_rewrites,
+    nutpie_compiler,
     per_draw_compile,
 )
 from allolaw.model.extending import AdaptedState, adapted_state_from_nutpie, extend_if_short
@@ -107,7 +108,9 @@ def fit_model(
         ``posterior_predictive`` (``trait``), ``prior``, ``prior_predictive``,
         ``observed_data``, ``constant_data``. ``idata.attrs`` holds ``backend`` (the one that
         ran), ``backend_requested``, ``backend_fallback`` (the error of a failed backend, or
-        empty), ``seed``, ``threads``, ``chain_extension`` (JSON record of
+        empty), ``compiler`` (how nutpie compiled the log density:
+        :func:`~allolaw.model.compiling.nutpie_compiler`; empty for the other backends),
+        ``seed``, ``threads``, ``chain_extension`` (JSON record of
         :func:`~allolaw.model.extending.extend_if_short`) and the timings
         ``compile_seconds``, ``sampling_seconds``, ``extension_seconds``,
         ``predictive_seconds`` and ``wall_seconds``.
@@ -174,6 +177,8 @@ def fit_model(
             "backend": used,
             "backend_requested": backend,
             "backend_fallback": fallback,
+            # how nutpie compiled the log density (jax or numba); empty for other backends
+            "compiler": str(idata.posterior.attrs.get("nutpie_compiler", "")),
             "seed": int(seed),
             "threads": int(threads),
             "compile_seconds": round(compile_s, 3),
@@ -315,13 +320,16 @@ def _sample(
         kwargs["nuts_sampler"] = "numpyro"
         kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential"}
     elif backend == "nutpie":
-        if NUTPIE_COMPILE.get("backend") == "jax":
+        from allolaw.model.phylo_terms import tree_species
+
+        compiler = nutpie_compiler(tree_species(model))
+        if compiler == "jax":
             apply_jax_cache()
-        log.info("fit: %s sampling started", backend)
+        log.info("fit: %s sampling started (log density compiled with %s)", backend, compiler)
         start = time.perf_counter()
         idata, sampling, state = _sample_nutpie(
             model, draws=draws, warmup=warmup, chains=chains,
-            target_acceptance=target_acceptance,
+            target_acceptance=target_acceptance, compiler=compiler,
             seed=seed, cores=max(1, threads), progress=progress, keep_state=keep_state)
         total = time.perf_counter() - start
         return idata, total - sampling, sampling, state
@@ -345,6 +353,7 @@ def _sample_nutpie(
     cores: int,
     progress: bool,
     keep_state: bool = False,
+    compiler: str | None = None,
 ) -> tuple[az.InferenceData, float, AdaptedState | None]:
     # What pm.sample(nuts_sampler="nutpie") does (pymc 5.28, sampling/mcmc.py:
     # _sample_external_nuts), called directly. pm.sample first assigns step methods, which
@@ -364,7 +373,7 @@ def _sample_nutpie(
         find_observations,
     )
 
-    compiled = nutpie.compile_pymc_model(model, **NUTPIE_COMPILE)
+    compiled = nutpie.compile_pymc_model(model, backend=compiler or NUTPIE_COMPILE["backend"])
     start = time.time()
     idata = nutpie.sample(
         compiled, draws=draws, tune=warmup, chains=chains, target_accept=target_acceptance,
@@ -389,7 +398,8 @@ def _sample_nutpie(
                             ("observed_data", find_observations))
     }
     idata.add_groups(groups, coords=coords, dims=dims)
-    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup})
+    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup,
+                                  "nutpie_compiler": compiler or NUTPIE_COMPILE["backend"]})
     return idata, sampling, state
 
 
