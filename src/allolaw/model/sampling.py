@@ -193,7 +193,6 @@ def fit_model(
     return idata
 
 
-
 def _add_predictive_groups(idata: az.InferenceData, model: pm.Model, *,
                            prior_model: pm.Model | None, seeds: np.ndarray,
                            prior_draws: int) -> float:
@@ -247,6 +246,7 @@ def _add_predictive_groups(idata: az.InferenceData, model: pm.Model, *,
     predictive_s = time.perf_counter() - start
     log.info("fit: log-likelihood and predictive draws in %.1f s in all", predictive_s)
     return predictive_s
+
 
 def _drop_sampler_values(idata: az.InferenceData, model: pm.Model) -> None:
     # Warm-up groups (if a backend kept them) and the sampler's unconstrained values, which
