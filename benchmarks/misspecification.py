@@ -122,15 +122,19 @@ def _run_jobs(jobs: list[tuple[str, int, str]], args: argparse.Namespace, start:
                        "--record", str(out), "--draws", str(args.draws), "--warmup",
                        str(args.warmup), "--chains", str(args.chains), "--target-accept",
                        str(args.target_accept)]
-                running.append((i, subprocess.Popen(cmd), out))
+                log = (Path(tmp) / f"{i}.log").open("w", encoding="utf-8")
+                running.append((i, subprocess.Popen(cmd, stderr=log), out))
+                log.close()  # the worker holds its own handle
             time.sleep(0.5)
             for item in list(running):
                 i, proc, out = item
                 if proc.poll() is None:
                     continue
                 running.remove(item)
-                if proc.returncode != 0:
-                    msg = f"worker for {jobs[i]} failed with exit code {proc.returncode}"
+                if proc.returncode != 0:  # say why: the worker's last lines of stderr
+                    tail = (Path(tmp) / f"{i}.log").read_text(encoding="utf-8").splitlines()
+                    msg = (f"worker for {jobs[i]} failed with exit code {proc.returncode}; "
+                           "its last lines of stderr:\n" + "\n".join(tail[-40:]))
                     raise RuntimeError(msg)
                 rec = json.loads(out.read_text(encoding="utf-8"))
                 records[i] = rec

@@ -196,14 +196,19 @@ def test_corrected_within_genus_slope_recovers_the_exponent_on_the_fixed_designs
 # --- the study itself (MCMC) --------------------------------------------------------------------
 
 @pytest.mark.mcmc
-@pytest.mark.slow  # two short fits in worker processes, side by side (four: 13 min, busy machine)
+@pytest.mark.slow  # two short fits in worker processes, one after the other (about 50 s)
 def test_study_records_every_fit_with_truth_and_consistent_scores(tmp_path):
     out = tmp_path / "study.json"
     cmd = [sys.executable, str(REPO / "benchmarks" / "misspecification.py"), "--scenarios",
            "wide_8x15", "--seeds", "2", "--draws", "100", "--warmup", "100",
-           "--chains", "2", "--jobs", "2", "--out", str(out)]
+           "--chains", "2", "--jobs", "1", "--out", str(out)]
     env = dict(os.environ, PYTHONPATH=str(REPO / "src"))
-    subprocess.run(cmd, check=True, env=env, capture_output=True, cwd=tmp_path)
+    # one worker at a time: a CI run once saw a worker fail (exit 1, output not kept) when
+    # two fits of the same model compiled side by side; the script now reports a worker's
+    # stderr, and so does this assertion
+    done = subprocess.run(cmd, check=False, env=env, capture_output=True, text=True,
+                          cwd=tmp_path)
+    assert done.returncode == 0, done.stderr[-4000:]
     result = json.loads(out.read_text(encoding="utf-8"))
     records = result["records"]
     assert sorted((r["scenario"], r["seed"]) for r in records) == [
