@@ -139,12 +139,16 @@ def fit_model(
         chosen, chains, warmup, draws, threads, seed,
     )
     keep_state = extension_draws > 0
+    from allolaw.model.phylo_terms import tree_species
+
+    compiler = nutpie_compiler(tree_species(model))  # used when nutpie runs
     cached_before = jax_cache_counts()
     try:
         idata, compile_s, sampling_s, state = _sample(
             model, chosen, chains=chains, draws=draws, warmup=warmup,
             target_acceptance=target_acceptance,
             seed=int(seed), threads=threads, progress=progress, keep_state=keep_state,
+            compiler=compiler,
         )
         used = chosen
     except Exception as err:  # any backend failure: fall back to PyMC's own sampler
@@ -156,6 +160,7 @@ def fit_model(
             model, "pymc", chains=chains, draws=draws, warmup=warmup,
             target_acceptance=target_acceptance,
             seed=int(seed), threads=threads, progress=progress, keep_state=keep_state,
+            compiler=compiler,
         )
         used = "pymc"
     log.info("fit: sampled in %.1f s (compile %.1f s)", sampling_s, compile_s)
@@ -177,8 +182,7 @@ def fit_model(
             "backend": used,
             "backend_requested": backend,
             "backend_fallback": fallback,
-            # how nutpie compiled the log density (jax or numba); empty for other backends
-            "compiler": str(idata.posterior.attrs.get("nutpie_compiler", "")),
+            "compiler": compiler if used == "nutpie" else "",
             "seed": int(seed),
             "threads": int(threads),
             "compile_seconds": round(compile_s, 3),
@@ -291,6 +295,7 @@ def _sample(
     threads: int,
     progress: bool,
     keep_state: bool = False,
+    compiler: str | None = None,
 ) -> tuple[az.InferenceData, float, float, AdaptedState | None]:
     # Returns (idata, compile seconds, sampling seconds, adapted state: nutpie with
     # keep_state only, else None). The sampling seconds are the backend's
@@ -320,9 +325,7 @@ def _sample(
         kwargs["nuts_sampler"] = "numpyro"
         kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential"}
     elif backend == "nutpie":
-        from allolaw.model.phylo_terms import tree_species
-
-        compiler = nutpie_compiler(tree_species(model))
+        compiler = compiler or NUTPIE_COMPILE["backend"]
         if compiler == "jax":
             apply_jax_cache()
         log.info("fit: %s sampling started (log density compiled with %s)", backend, compiler)
@@ -398,8 +401,7 @@ def _sample_nutpie(
                             ("observed_data", find_observations))
     }
     idata.add_groups(groups, coords=coords, dims=dims)
-    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup,
-                                  "nutpie_compiler": compiler or NUTPIE_COMPILE["backend"]})
+    idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup})
     return idata, sampling, state
 
 
