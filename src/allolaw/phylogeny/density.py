@@ -42,6 +42,7 @@ import numpy as np
 import pytensor.tensor as pt
 
 from allolaw.phylogeny.tree import Phylogeny
+from allolaw.phylogeny.tree_op import tree_density
 
 __all__ = [
     "log_density",
@@ -80,7 +81,7 @@ def log_density(residuals: Any, sigma: Any, lam: Any, phylogeny: Phylogeny) -> A
     residuals = pt.as_tensor_variable(residuals)
     sigma = pt.as_tensor_variable(sigma)
     z = residuals / sigma
-    return _prune(z, lam, phylogeny, pt) - phylogeny.n_species * pt.log(sigma)
+    return tree_density(z, lam, phylogeny) - phylogeny.n_species * pt.log(sigma)
 
 
 def log_density_numpy(
