@@ -2,15 +2,17 @@
 
 For random trees (allolaw's seeded generator; invented) of 1k, 3k, 10k and 30k tips, the
 log density of N(0, σ²(λC + (1 − λ)D)) and its gradient with respect to the residuals, σ and
-λ are compiled with PyTensor's JAX backend (the mode nutpie uses in the fits, with the same
-lighter rewrites as allolaw.model.compiling) and, with ``--c``, PyTensor's default C backend.
+λ are compiled with PyTensor's JAX and numba backends (the two compilers nutpie uses in the
+fits; JAX with the same lighter rewrites as allolaw.model.compiling) and, with ``--c``,
+PyTensor's default C backend. The tree's messages are one operation
+(allolaw.phylogeny.tree_op.TreeDensity): numba runs its node loops, JAX its level form.
 Printed per size: levels of the tree, graph build and compile seconds, the compiled graph's
 node count, the median seconds per call (of 50 calls after a warm-up; JAX returns before it
 has finished, so each timed call converts every output to a NumPy array), and the NumPy
 twin's (density only). "rewrite s" is PyTensor's graph rewriting (``pytensor.function``),
-"first call s" the backend's own compilation (XLA for JAX) plus one call; "|diff|" the
-compiled value's distance from the NumPy twin's. The growth exponent is the least-squares
-slope of log time per call on log tips.
+"first call s" the backend's own compilation (XLA for JAX, LLVM for numba) plus one call;
+"|diff|" the compiled value's distance from the NumPy twin's. The growth exponent is the
+least-squares slope of log time per call on log tips.
 
 Run: PYTHONPATH=src python benchmarks/phylo_density.py [--c] [sizes ...]
 """
@@ -42,7 +44,7 @@ def _median_call(f, *args, repeats: int = 50) -> float:
 def main() -> None:
     args = [a for a in sys.argv[1:] if not a.startswith("--")]
     sizes = [int(a) for a in args] or [1_000, 3_000, 10_000, 30_000]
-    modes = ["JAX"] + (["C"] if "--c" in sys.argv else [])
+    modes = ["JAX", "NUMBA"] + (["C"] if "--c" in sys.argv else [])
     lighter_jax_rewrites()
     r, s, lam = pt.vector("r"), pt.scalar("sigma"), pt.scalar("lam")
     print(f"{'tips':>7}{'levels':>7}{'mode':>6}{'build s':>9}{'rewrite s':>10}"
@@ -59,7 +61,7 @@ def main() -> None:
             build = time.perf_counter() - t0
             t0 = time.perf_counter()
             compiled = pytensor.function([r, s, lam], [out, *grads],
-                                         mode="JAX" if mode == "JAX" else "FAST_RUN")
+                                         mode="FAST_RUN" if mode == "C" else mode)
             rewrite = time.perf_counter() - t0
 
             def f(*a, compiled=compiled):

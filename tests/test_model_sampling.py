@@ -162,6 +162,53 @@ def test_nutpie_called_directly_gives_pm_sample_own_nutpie_draws() -> None:
 
 
 @pytest.mark.mcmc
+def test_large_deterministics_are_recomputed_not_stored_and_equal_pm_sample_own(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # memory: nutpie is asked not to store deterministics of >= LARGE_DETERMINISTIC values
+    # per draw; they are recomputed from the draws afterwards. Reference: PyMC's own route,
+    # which stores them (same seed: same draws, so the same values).
+    import nutpie
+
+    n = sampling.LARGE_DETERMINISTIC
+
+    def model() -> pm.Model:
+        with pm.Model(coords={"species": np.arange(n)}) as m:
+            shift = pm.Normal("shift", 0.0, 1.0, dims="species")
+            scale = pm.HalfNormal("scale", 1.0)
+            pm.Deterministic("big", 2.0 + scale * shift, dims="species")
+            pm.Deterministic("small", scale * 3.0)
+            pm.Normal("trait", scale * shift[:5], 1.0, observed=np.zeros(5))
+        return m
+
+    asked = {}
+    real = nutpie.compile_pymc_model
+
+    def spy(m: pm.Model, **kwargs: object) -> object:
+        asked["var_names"] = kwargs.get("var_names")
+        return real(m, **kwargs)
+
+    monkeypatch.setattr(nutpie, "compile_pymc_model", spy)
+    settings = {"draws": 30, "chains": 2}
+    compiling.lighter_jax_rewrites()
+    ours, _, _ = sampling._sample_nutpie(model(), **settings, warmup=30, target_acceptance=0.8,
+                                        seed=5, cores=1, progress=False)
+    assert asked["var_names"] is not None
+    assert "big" not in asked["var_names"]
+    assert "small" in asked["var_names"]
+    monkeypatch.setattr(nutpie, "compile_pymc_model", real)
+    reference = pm.sample(model=model(), **settings, tune=30, target_accept=0.8, random_seed=5,
+                          progressbar=False, nuts_sampler="nutpie",
+                          compute_convergence_checks=False,
+                          nuts_sampler_kwargs={"cores": 1, "low_rank_modified_mass_matrix": True,
+                                               **compiling.NUTPIE_COMPILE})
+    np.testing.assert_array_equal(ours.posterior["shift"].values,
+                                  reference.posterior["shift"].values)
+    assert ours.posterior["big"].dims == ("chain", "draw", "species")
+    np.testing.assert_allclose(ours.posterior["big"].values, reference.posterior["big"].values,
+                               rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.mcmc
 def test_default_backend_recovers_the_conjugate_normal_posterior() -> None:
     idata = fit_model(_conjugate_model(), seed=5, chains=2, draws=300, warmup=300,
                       prior_draws=20)

@@ -16,8 +16,8 @@ from allolaw.phylogeny.density import (
     size_log_density_numpy,
 )
 from allolaw.phylogeny.simulate import random_tree
-from allolaw.phylogeny.tree_op import TreeDensity
 from allolaw.phylogeny.tree import tree_covariance
+from allolaw.phylogeny.tree_op import TreeDensity
 
 # trees: (tips, seed, polytomy share, zero-length internal share, ultrametric)
 TREES = [

@@ -52,6 +52,10 @@ BACKENDS = ("pymc", "numpyro", "nutpie")
 
 #: What ``backend="auto"`` means on this project's machine (see ``benchmarks/README.md``).
 AUTO_BACKEND = "nutpie"
+#: Deterministics with at least this many values per draw are recomputed after nutpie's run
+#: instead of stored by it (memory; :func:`_large_deterministics`). Engineering choice: the
+#: demo's per-species deterministics (172 values) stay stored, so small fits are unchanged.
+LARGE_DETERMINISTIC = 2000
 
 #: The observed variable whose pointwise log-likelihood is kept (model comparison uses it).
 OBSERVED = "trait"
@@ -376,7 +380,11 @@ def _sample_nutpie(
         find_observations,
     )
 
-    compiled = nutpie.compile_pymc_model(model, backend=compiler or NUTPIE_COMPILE["backend"])
+    recomputed = _large_deterministics(model)
+    kept = None if not recomputed else [v.name for v in model.unobserved_value_vars
+                                        if v.name not in recomputed]
+    compiled = nutpie.compile_pymc_model(model, backend=compiler or NUTPIE_COMPILE["backend"],
+                                         var_names=kept)
     start = time.time()
     idata = nutpie.sample(
         compiled, draws=draws, tune=warmup, chains=chains, target_accept=target_acceptance,
@@ -388,6 +396,10 @@ def _sample_nutpie(
         save_warmup=False,
     )
     sampling = time.time() - start
+    if recomputed:
+        idata.posterior = pm.compute_deterministics(
+            idata.posterior, var_names=recomputed, model=model, merge_dataset=True,
+            progressbar=False, compile_kwargs=dict(PREDICTIVE_COMPILE))
     # nutpie joins the unconstrained values in the order of model.free_RVs (nutpie 0.16,
     # compile_pymc._make_functions)
     state = (adapted_state_from_nutpie(idata, [model.rvs_to_values[rv].name
@@ -403,6 +415,27 @@ def _sample_nutpie(
     idata.add_groups(groups, coords=coords, dims=dims)
     idata.posterior.attrs.update({"sampling_time": sampling, "tuning_steps": warmup})
     return idata, sampling, state
+
+
+def _large_deterministics(model: pm.Model) -> list[str]:
+    """Deterministics of the model with at least :data:`LARGE_DETERMINISTIC` values per draw.
+
+    nutpie keeps every stored value of every draw (the warm-up's too, kept until the end) in
+    its own trace and copies the lot into the posterior at the end. A 10,000-species model
+    with latent sizes stores the n size shifts and the n true sizes (``true_log_size``, a
+    deterministic): the copy made the fit's peak (4.5 GB, benchmarks/README.md). Such
+    deterministics are cheaper to recompute from the draws after sampling
+    (:func:`pymc.compute_deterministics`, one vectorised call) than to store: same values.
+    """
+    names = []
+    for var in model.deterministics:
+        try:
+            size = int(np.prod(var.shape.eval()))
+        except Exception:  # a shape that needs inputs: keep the variable stored
+            continue
+        if size >= LARGE_DETERMINISTIC:
+            names.append(var.name)
+    return names
 
 
 def _show_progress() -> bool:

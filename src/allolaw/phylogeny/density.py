@@ -14,15 +14,17 @@ parameter of μ. Nothing is integrated out.
 Each message is ``N(μ_k; x, v_k)``, the likelihood of the tips below a node as a function of
 the node's value x (a tip: its residual, variance 0). Going up a branch adds its length to
 the variance; the messages of a node's children multiply into one, with a constant factor
-that collects the density. Nodes are processed a level at a time (all nodes whose children
-are done), so the PyTensor graph has a fixed number of operations per level, not per node.
+that collects the density. In a fit the messages are one PyTensor operation
+(:class:`allolaw.phylogeny.tree_op.TreeDensity`: a loop over the nodes and a hand-written
+gradient, compiled by numba; JAX runs them a level at a time). The NumPy twin here processes
+nodes a level at a time (all nodes whose children are done).
 
-Cost (``benchmarks/phylo_density.py``, JAX backend, density + gradient, random trees, on 2
-cores shared with other jobs, load about 11): 1k tips, 20 levels: 657 compiled nodes, 0.6 ms
-per call; 30k tips, 34 levels: 1,100 nodes, 12 ms per call. Compiling is the expensive part:
-PyTensor's rewriting took 15 s (1k) to 53 s (30k) and XLA's compilation 31 s to 102 s there.
-Passing the index arrays as shared variables instead of constants did not help (10k tips:
-22 s + 50 s against 17 s + 31 s).
+Cost (``benchmarks/phylo_density.py``, density + gradient, random trees, 2 cores, idle,
+2026-12-05): numba 0.04 ms per call at 1k tips, 0.35 ms at 10k, 1.2 ms at 30k (compile under
+1 s); JAX 0.59, 2.4 and 6.0 ms (first call 4-7 s). The graph is 8 compiled nodes whatever
+the tree (the level-by-level PyTensor graph it replaces had 657 at 1k and 1,100 at 30k, and
+took 1.1-1.25 ms per call with numba and 2.95 ms with JAX at 10k tips, and 136-209 s of
+numba compiling in a whole fit).
 
 References
 ----------
@@ -42,7 +44,7 @@ import numpy as np
 import pytensor.tensor as pt
 
 from allolaw.phylogeny.tree import Phylogeny
-from allolaw.phylogeny.tree_op import tree_density
+from allolaw.phylogeny.tree_op import level_form, tree_density
 
 __all__ = [
     "log_density",
@@ -50,8 +52,6 @@ __all__ = [
     "size_log_density",
     "size_log_density_numpy",
 ]
-
-_LOG_2PI = float(np.log(2.0 * np.pi))
 
 
 def log_density(residuals: Any, sigma: Any, lam: Any, phylogeny: Phylogeny) -> Any:
@@ -70,9 +70,9 @@ def log_density(residuals: Any, sigma: Any, lam: Any, phylogeny: Phylogeny) -> A
 
     Returns
     -------
-    Scalar tensor: the exact log density; its gradient comes from PyTensor's autodiff.
-    The graph has a fixed set of operations per level of the tree, whatever the number of
-    species (with the gradient, about 30 compiled nodes per level).
+    Scalar tensor: the exact log density, one :class:`~allolaw.phylogeny.tree_op.TreeDensity`
+    node (which also gives the gradient in the residuals and λ) and a few element-wise ones,
+    whatever the number of species.
 
     References
     ----------
@@ -89,7 +89,7 @@ def log_density_numpy(
 ) -> float:
     """NumPy twin of :func:`log_density` (same algorithm, same levels)."""
     z = np.asarray(residuals, float) / sigma
-    return float(_prune(z, lam, phylogeny, np) - phylogeny.n_species * np.log(sigma))
+    return float(level_form(z, lam, phylogeny, np) - phylogeny.n_species * np.log(sigma))
 
 
 def size_log_density(
@@ -113,42 +113,3 @@ def size_log_density_numpy(
 ) -> float:
     """NumPy twin of :func:`size_log_density`."""
     return log_density_numpy(np.asarray(sizes, float) - mean, sd, lam, phylogeny)
-
-
-def _prune(z: Any, lam: Any, phylogeny: Phylogeny, xp: Any) -> Any:
-    # log N(z; 0, λC + (1 − λ)D) by messages from the tips up; xp is numpy or pytensor.tensor
-    m = phylogeny.n_nodes
-    t = lam * phylogeny.length + (1.0 - lam) * phylogeny.tip_height  # Pagel's λ tree
-    mu = _set(xp.zeros(m), phylogeny.tip_node, z, xp)
-    var = xp.zeros(m)
-    total = 0.0
-    for level in phylogeny.levels:
-        c, slot, k = level.children, level.slot, len(level.parents)
-        v = var[c] + t[c]  # message variance at the parent: child's plus its branch
-        w = 1.0 / v
-        prec = _segment_sum(w, slot, k, xp)
-        mean = _segment_sum(mu[c] * w, slot, k, xp) / prec
-        dev = mu[c] - mean[slot]
-        # log of the constant when the k children's messages multiply into one
-        total = total - 0.5 * (
-            xp.sum(xp.log(v)) + xp.sum(xp.log(prec)) + xp.sum(dev * dev * w)
-            + _LOG_2PI * (len(c) - k)
-        )
-        mu = _set(mu, level.parents, mean, xp)
-        var = _set(var, level.parents, 1.0 / prec, xp)
-    # the root's value is 0: evaluate its message there
-    return total - 0.5 * (_LOG_2PI + xp.log(var[-1]) + mu[-1] ** 2 / var[-1])
-
-
-def _segment_sum(values: Any, index: np.ndarray, n: int, xp: Any) -> Any:
-    if xp is np:
-        return np.bincount(index, weights=values, minlength=n)
-    return pt.inc_subtensor(pt.zeros(n)[index], values)
-
-
-def _set(target: Any, index: np.ndarray, values: Any, xp: Any) -> Any:
-    if xp is np:
-        out = np.array(target, float)
-        out[index] = values
-        return out
-    return pt.set_subtensor(target[index], values)

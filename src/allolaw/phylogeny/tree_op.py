@@ -50,7 +50,7 @@ from pytensor.graph.op import Op
 
 from allolaw.phylogeny.tree import Phylogeny
 
-__all__ = ["TreeDensity", "tree_density", "value_and_gradient"]
+__all__ = ["TreeDensity", "level_form", "tree_density", "value_and_gradient"]
 
 _LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -177,8 +177,8 @@ class TreeDensity(Op):
         # the value depends on z and λ; the tree's arrays are data
         return [[True, True, True], [True, True, True]] + [[False] * 3] * 4
 
-    def L_op(self, inputs: list[Any], outputs: list[Any], output_grads: list[Any]
-             ) -> list[Any]:
+    def L_op(self, inputs: list[Any], outputs: list[Any],  # noqa: N802 - PyTensor's name
+             output_grads: list[Any]) -> list[Any]:
         g_out, g_gz, g_glam = output_grads
         for k, g in ((1, g_gz), (2, g_glam)):
             if not isinstance(g.type, DisconnectedType):
@@ -188,6 +188,49 @@ class TreeDensity(Op):
                     DisconnectedType()() for _ in range(4)]
         _, g_z, g_lam = outputs
         return [g_out * g_z, g_out * g_lam] + [DisconnectedType()() for _ in range(4)]
+
+
+def level_form(z: Any, lam: Any, phylogeny: Phylogeny, xp: Any) -> Any:
+    """``log N(z; 0, λC + (1 − λ)D)`` a level at a time; ``xp`` is ``numpy`` or ``jax.numpy``.
+
+    Every node whose children are done is finished in one vectorised step (the NumPy twin of
+    the density, and the JAX implementation of :class:`TreeDensity` through ``jax.grad``).
+    """
+    m = phylogeny.n_nodes
+    t = lam * phylogeny.length + (1.0 - lam) * phylogeny.tip_height  # Pagel's λ tree
+    mu = _set(xp.zeros(m), phylogeny.tip_node, z, xp)
+    var = xp.zeros(m)
+    total = 0.0
+    for level in phylogeny.levels:
+        c, slot, k = level.children, level.slot, len(level.parents)
+        v = var[c] + t[c]  # message variance at the parent: child's plus its branch
+        w = 1.0 / v
+        prec = _segment_sum(w, slot, k, xp)
+        mean = _segment_sum(mu[c] * w, slot, k, xp) / prec
+        dev = mu[c] - mean[slot]
+        # log of the constant when the k children's messages multiply into one
+        total = total - 0.5 * (
+            xp.sum(xp.log(v)) + xp.sum(xp.log(prec)) + xp.sum(dev * dev * w)
+            + _LOG_2PI * (len(c) - k)
+        )
+        mu = _set(mu, level.parents, mean, xp)
+        var = _set(var, level.parents, 1.0 / prec, xp)
+    # the root's value is 0: evaluate its message there
+    return total - 0.5 * (_LOG_2PI + xp.log(var[-1]) + mu[-1] ** 2 / var[-1])
+
+
+def _segment_sum(values: Any, index: np.ndarray, n: int, xp: Any) -> Any:
+    if xp is np:
+        return np.bincount(index, weights=values, minlength=n)
+    return xp.zeros(n).at[index].add(values)
+
+
+def _set(target: Any, index: np.ndarray, values: Any, xp: Any) -> Any:
+    if xp is np:
+        out = np.array(target, float)
+        out[index] = values
+        return out
+    return target.at[index].set(values)
 
 
 _TREE_DENSITY = TreeDensity()
@@ -221,7 +264,7 @@ def _register_backends() -> None:
 
 def _jax_function(node: Apply) -> Any:
     # JAX needs static shapes: the tree's arrays must be constants, read here once; the level
-    # form (one vectorised step per level, as in density._prune) is differentiated by jax.grad
+    # form (one vectorised step per level) is differentiated by jax.grad
     import jax
     import jax.numpy as jnp
 
@@ -229,28 +272,11 @@ def _jax_function(node: Apply) -> Any:
     if not all(isinstance(v, Constant) for v in tree):
         msg = "TreeDensity under JAX needs the tree's arrays as constants of the graph"
         raise NotImplementedError(msg)
-    parent, length, tip_height, tip_node = (np.asarray(v.data) for v in tree)
+    parent, length, _tip_height, tip_node = (np.asarray(v.data) for v in tree)
     phylogeny = Phylogeny(parent, length, tip_node)
-    levels = [(lv.parents, lv.children, lv.slot) for lv in phylogeny.levels]
-    m = len(parent)
 
     def value(z: Any, lam: Any) -> Any:
-        t = lam * length + (1.0 - lam) * tip_height
-        mu = jnp.zeros(m).at[tip_node].set(z)
-        var = jnp.zeros(m)
-        total = 0.0
-        for parents, c, slot in levels:
-            k = len(parents)
-            v = var[c] + t[c]
-            w = 1.0 / v
-            prec = jnp.zeros(k).at[slot].add(w)
-            mean = jnp.zeros(k).at[slot].add(mu[c] * w) / prec
-            dev = mu[c] - mean[slot]
-            total = total - 0.5 * (jnp.sum(jnp.log(v)) + jnp.sum(jnp.log(prec))
-                                   + jnp.sum(dev * dev * w) + _LOG_2PI * (len(c) - k))
-            mu = mu.at[parents].set(mean)
-            var = var.at[parents].set(1.0 / prec)
-        return total - 0.5 * (_LOG_2PI + jnp.log(var[-1]) + mu[-1] ** 2 / var[-1])
+        return level_form(z, lam, phylogeny, jnp)
 
     both = jax.value_and_grad(value, argnums=(0, 1))
 
