@@ -34,9 +34,10 @@ Printed per size (seconds from ``time.perf_counter`` and the fit's own attribute
   posterior and prior predictive draws), which the fit stage also spends;
 * total s: from the first ``build_model`` call to the return of ``fit_model``;
 * peak MB: ``ru_maxrss`` of the size's process (imports, data, model, draws);
-* divergences, the largest R-hat over all free parameters (rank-normalised split R-hat,
-  Vehtari et al. 2021), the smallest bulk ESS, and the posterior means of b and λ against
-  the truth (the JSON rows add their central 90% intervals).
+* divergences, leapfrog steps per kept draw (JSON only), the largest R-hat over all free
+  parameters (rank-normalised split R-hat, Vehtari et al. 2021), the smallest bulk ESS,
+  and the posterior means of b and λ against the truth (the JSON rows add their central 90%
+  intervals).
 
 Then the growth exponent: the least-squares slope of log time on log tips, for the sampling
 time and the total. ``--json OUT`` writes the rows, the command and the load averages.
@@ -207,6 +208,9 @@ def _summarise(idata, names: list[str]) -> dict:
         "parameters": int(sum(post[v].size // (post.sizes["chain"] * post.sizes["draw"])
                               for v in names)),
         "divergences": int(idata.sample_stats["diverging"].sum()),
+        # leapfrog steps per kept draw (nutpie's n_steps; the warm-up's are not kept)
+        "steps_per_draw": (float(idata.sample_stats["n_steps"].mean())
+                           if "n_steps" in idata.sample_stats else None),
         "max_rhat": float(max(float(rhat[v].max()) for v in rhat.data_vars)),
         "min_ess_bulk": float(min(float(ess[v].min()) for v in ess.data_vars)),
         "b_mean": float(idata.posterior["exponent"].mean()),

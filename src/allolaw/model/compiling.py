@@ -15,13 +15,15 @@ from allolaw.runtime import LIGHTER_REWRITES
 NUTPIE_COMPILE: dict[str, str] = {"backend": os.environ.get("ALLOLAW_NUTPIE_BACKEND", "jax")}
 
 #: Models with shared ancestry on a tree of at least this many species compile with numba.
-#: Their log density runs Gaussian messages level by level through the tree; XLA's gathers
-#: and scatters cost more per gradient there than numba's loops (10,000 tips, density and
-#: gradient of residuals and sizes: JAX 2.95 ms, numba 1.1-1.25 ms per call; whole fit,
-#: 4 x (1000 + 1000), cold caches: sampling 683 s vs 304 s, compile 12 s vs 209 s;
-#: benchmarks/README.md "Whole fits by tree size"). Below it the numba compile costs more
-#: than it saves.
-NUMBA_FROM_TREE_SPECIES = 3000
+#: Their tree density is one operation (phylogeny.tree_op.TreeDensity) whose numba form is a
+#: loop over the nodes: 0.35 ms per density + gradient at 10,000 tips against 2.4 ms for the
+#: JAX level form (benchmarks/phylo_density.py, 2026-12-05); a whole 10,000-tip fit, 4 x
+#: (1000 + 1000), took 275-280 s with 8-13 s of compiling, and at 1,000 tips 42 s with numba
+#: against 151 s with JAX (benchmarks/README.md "The tree density as one operation"). Below
+#: 1,000 species JAX stays (not measured there): the per-gradient gain shrinks with the tree,
+#: and JAX's programs come from the persistent cache across a batch while nutpie compiles
+#: numba's anew in every process (about 13 s).
+NUMBA_FROM_TREE_SPECIES = 1000
 
 
 def nutpie_compiler(tree_species: int) -> str:
