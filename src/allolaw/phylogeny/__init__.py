@@ -5,6 +5,8 @@
   the rows kept, species missing from the tree, tips pruned, the file's sha256).
 * :func:`log_density` (PyTensor) / :func:`log_density_numpy`: residuals
   ``r ~ N(0, σ²(λC + (1 − λ)D))`` (Pagel's λ) by Felsenstein's pruning, no n × n matrix.
+  In a graph the messages are one operation (:mod:`allolaw.phylogeny.tree_op`: a numba loop
+  over the nodes with a hand-written gradient; JAX's level form through ``jax.grad``).
 * :func:`size_log_density` (PyTensor) / :func:`size_log_density_numpy`: latent sizes by
   Brownian motion from a population mean at the root.
 * :func:`loo_log_density`: ``log p(r_i | r_−i)`` per species and draw, for PSIS-LOO with

@@ -39,9 +39,9 @@ evolution models. Syst. Biol. 63, 397–408.
 
 from __future__ import annotations
 
+from functools import cache
 from typing import Any
 
-import numba
 import numpy as np
 import pytensor.tensor as pt
 from pytensor.gradient import DisconnectedType, grad_not_implemented
@@ -55,9 +55,17 @@ __all__ = ["TreeDensity", "level_form", "tree_density", "value_and_gradient"]
 _LOG_2PI = float(np.log(2.0 * np.pi))
 
 
-@numba.njit(cache=True, fastmath=False)
+@cache
+def _kernel() -> Any:
+    # compiled on first use (numba's import and compile stay out of stages that only read a
+    # tree); cached on disk by numba between processes
+    import numba
+
+    return numba.njit(cache=True)(_value_and_gradient)
+
+
 def _value_and_gradient(z, lam, parent, length, tip_height, tip_node):  # pragma: no cover
-    # (numba-compiled: coverage cannot see inside; tests compare it with the dense density)
+    # (run numba-compiled through _kernel; tests compare it with the dense density)
     m = parent.shape[0]
     n = tip_node.shape[0]
     t = lam * length + (1.0 - lam) * tip_height
@@ -128,7 +136,7 @@ def value_and_gradient(z: np.ndarray, lam: float, phylogeny: Phylogeny
                        ) -> tuple[float, np.ndarray, float]:
     """Log density of ``z ~ N(0, λC + (1 − λ)D)`` and its gradient in ``z`` and λ (NumPy)."""
     arrays = _tree_arrays(phylogeny)
-    return _value_and_gradient(np.asarray(z, np.float64), float(lam), *arrays)
+    return _kernel()(np.asarray(z, np.float64), float(lam), *arrays)
 
 
 def _tree_arrays(phylogeny: Phylogeny) -> tuple[np.ndarray, ...]:
@@ -148,6 +156,7 @@ class TreeDensity(Op):
 
     def make_node(self, z: Any, lam: Any, parent: Any, length: Any, tip_height: Any,
                   tip_node: Any) -> Apply:
+        _register_backends()
         z = pt.as_tensor_variable(z).astype("float64")
         lam = pt.as_tensor_variable(lam).astype("float64")
         parent = pt.as_tensor_variable(parent)
@@ -162,7 +171,7 @@ class TreeDensity(Op):
 
     def perform(self, node: Apply, inputs: list[Any], output_storage: list[Any]) -> None:
         z, lam, parent, length, tip_height, tip_node = inputs
-        total, g_z, g_lam = _value_and_gradient(
+        total, g_z, g_lam = _kernel()(
             np.asarray(z, np.float64), float(lam), np.asarray(parent, np.int64),
             np.asarray(length, np.float64), np.asarray(tip_height, np.float64),
             np.asarray(tip_node, np.int64))
@@ -238,17 +247,23 @@ _TREE_DENSITY = TreeDensity()
 
 def tree_density(z: Any, lam: Any, phylogeny: Phylogeny) -> Any:
     """PyTensor log density of ``z ~ N(0, λC + (1 − λ)D)``: one :class:`TreeDensity` node."""
+    _register_backends()
     arrays = [pt.constant(a) for a in _tree_arrays(phylogeny)]
     return _TREE_DENSITY(z, lam, *arrays)[0]
 
 
+@cache
 def _register_backends() -> None:
+    # once, at the first graph: importing PyTensor's JAX dispatch imports JAX (about 1.5 s),
+    # which stages that only read a tree should not pay
     from pytensor.link.jax.dispatch import jax_funcify
     from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 
     @register_funcify_default_op_cache_key(TreeDensity)
     def _numba_tree_density(op: TreeDensity, node: Apply, **kwargs: Any) -> Any:
-        kernel = _value_and_gradient
+        import numba
+
+        kernel = _kernel()
 
         @numba.njit
         def tree_density_numba(z, lam, parent, length, tip_height, tip_node):  # pragma: no cover
@@ -286,5 +301,3 @@ def _jax_function(node: Apply) -> Any:
 
     return tree_density_jax
 
-
-_register_backends()
