@@ -2,7 +2,8 @@
 
     .venv/bin/python benchmarks/calibration.py --replicates 100 --out benchmarks/calibration.json
 
-Replicates run in worker processes of ``--per-process`` replicates each (default 10).
+Replicates run in worker processes of ``--per-process`` replicates each (default 10),
+``--jobs`` of them at a time (default 1; 2 on a 2-core machine).
 
 Each replicate draws all parameters from the prior, simulates a small dataset (4 genera x 8
 species, errors in size and trait) and fits it (Talts et al. 2018, arXiv:1804.06788). The ranks
@@ -15,7 +16,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import subprocess
 import sys
 import tempfile
 import time
@@ -61,6 +61,8 @@ def main() -> None:
     parser.add_argument("--bins", type=int, default=10, help="rank histogram bins")
     parser.add_argument("--per-process", type=int, default=10,
                         help="replicates fitted by one worker process before a fresh one starts")
+    parser.add_argument("--jobs", type=int, default=1,
+                        help="worker processes at a time (each fit is single-threaded)")
     parser.add_argument("--out", default="benchmarks/calibration.json")
     parser.add_argument("--worker", nargs=2, type=int, metavar=("START", "STOP"),
                         help=argparse.SUPPRESS)
@@ -83,18 +85,27 @@ def main() -> None:
     # Unable to allocate section memory"). The prior draws are seeded, so the split does not
     # change any replicate.
     start = time.perf_counter()
-    records: list[dict] = []
+    from allolaw.testing.workers import run_commands
+
+    batches = [(lo, min(lo + args.per_process, args.replicates))
+               for lo in range(0, args.replicates, args.per_process)]
     with tempfile.TemporaryDirectory() as tmp:
-        for lo in range(0, args.replicates, args.per_process):
-            hi = min(lo + args.per_process, args.replicates)
-            out = Path(tmp) / f"records_{lo}.json"
-            cmd = [sys.executable, __file__, "--replicates", str(args.replicates),
-                   "--seed", str(args.seed), "--draws", str(args.draws), "--warmup",
-                   str(args.warmup), "--worker", str(lo), str(hi), "--records", str(out)]
-            subprocess.run(cmd, check=True)
-            records += json.loads(out.read_text(encoding="utf-8"))
+        outs = [Path(tmp) / f"records_{lo}.json" for lo, _ in batches]
+        commands = [[sys.executable, __file__, "--replicates", str(args.replicates),
+                     "--seed", str(args.seed), "--draws", str(args.draws), "--warmup",
+                     str(args.warmup), "--worker", str(lo), str(hi), "--records", str(out)]
+                    for (lo, hi), out in zip(batches, outs, strict=True)]
+
+        def done(i: int) -> None:
+            lo, hi = batches[i]
             print(f"replicates {lo + 1}-{hi} of {args.replicates} done, "
                   f"{time.perf_counter() - start:.0f} s", flush=True)
+
+        run_commands(commands, jobs=args.jobs, on_done=done)
+        # records in replicate order, whichever batch finished first
+        records: list[dict] = []
+        for out in outs:
+            records += json.loads(out.read_text(encoding="utf-8"))
     result = summarise_calibration(records, parameters=PARAMETERS, coverage_of=COVERAGE_OF,
                                    bins=args.bins)
     seconds = time.perf_counter() - start
@@ -111,7 +122,8 @@ def main() -> None:
     print(f"replicates with divergences: {sum(d > 0 for d in result.divergences)}; "
           f"max R-hat over replicates: {max(result.max_rhat):.3f}")
     out = result.to_dict() | {"replicates": args.replicates, "seed": args.seed,
-                              "seconds": seconds, "spec": spec.to_dict(), "sampler": sampler}
+                              "seconds": seconds, "jobs": args.jobs, "spec": spec.to_dict(),
+                              "sampler": sampler}
     Path(args.out).write_text(json.dumps(out, indent=2, sort_keys=True) + "\n", encoding="utf-8")
     print(f"wrote {args.out}")
 

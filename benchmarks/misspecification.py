@@ -23,7 +23,6 @@ import argparse
 import datetime
 import json
 import logging
-import subprocess
 import sys
 import tempfile
 import time
@@ -110,43 +109,31 @@ def main() -> None:
 def _run_jobs(jobs: list[tuple[str, int, str]], args: argparse.Namespace, start: float
               ) -> list[dict]:
     # at most args.jobs worker processes at once; records come back in job order
+    from allolaw.testing.workers import run_commands
+
     records: dict[int, dict] = {}
-    running: list[tuple[int, subprocess.Popen, Path]] = []
     with tempfile.TemporaryDirectory() as tmp:
-        queue = list(enumerate(jobs))
-        while queue or running:
-            while queue and len(running) < max(1, args.jobs):
-                i, (scenario, seed, model) = queue.pop(0)
-                out = Path(tmp) / f"{i}.json"
-                cmd = [sys.executable, __file__, "--worker", scenario, str(seed), model,
-                       "--record", str(out), "--draws", str(args.draws), "--warmup",
-                       str(args.warmup), "--chains", str(args.chains), "--target-accept",
-                       str(args.target_accept)]
-                log = (Path(tmp) / f"{i}.log").open("w", encoding="utf-8")
-                running.append((i, subprocess.Popen(cmd, stderr=log), out))
-                log.close()  # the worker holds its own handle
-            time.sleep(0.5)
-            for item in list(running):
-                i, proc, out = item
-                if proc.poll() is None:
-                    continue
-                running.remove(item)
-                if proc.returncode != 0:  # say why: the worker's last lines of stderr
-                    tail = (Path(tmp) / f"{i}.log").read_text(encoding="utf-8").splitlines()
-                    msg = (f"worker for {jobs[i]} failed with exit code {proc.returncode}; "
-                           "its last lines of stderr:\n" + "\n".join(tail[-40:]))
-                    raise RuntimeError(msg)
-                rec = json.loads(out.read_text(encoding="utf-8"))
-                records[i] = rec
-                # the records so far, so an interrupted study keeps its finished fits
-                partial = Path(f"{args.out}.partial")
-                partial.write_text(json.dumps([records[k] for k in sorted(records)]) + "\n",
-                                   encoding="utf-8")
-                print(f"{rec['scenario']} seed {rec['seed']} {rec['model']}: mean "
-                      f"{rec['mean']:.3f} [{rec['lo']:.3f}, {rec['hi']:.3f}] top {rec['top']}"
-                      f", {rec['divergences']} div, R-hat {rec['max_rhat']:.3f}; "
-                      f"{len(records)}/{len(jobs)} done, {time.perf_counter() - start:.0f} s",
-                      flush=True)
+        outs = [Path(tmp) / f"{i}.json" for i in range(len(jobs))]
+        commands = [[sys.executable, __file__, "--worker", scenario, str(seed), model,
+                     "--record", str(outs[i]), "--draws", str(args.draws), "--warmup",
+                     str(args.warmup), "--chains", str(args.chains), "--target-accept",
+                     str(args.target_accept)]
+                    for i, (scenario, seed, model) in enumerate(jobs)]
+
+        def done(i: int) -> None:
+            rec = json.loads(outs[i].read_text(encoding="utf-8"))
+            records[i] = rec
+            # the records so far, so an interrupted study keeps its finished fits
+            partial = Path(f"{args.out}.partial")
+            partial.write_text(json.dumps([records[k] for k in sorted(records)]) + "\n",
+                               encoding="utf-8")
+            print(f"{rec['scenario']} seed {rec['seed']} {rec['model']}: mean "
+                  f"{rec['mean']:.3f} [{rec['lo']:.3f}, {rec['hi']:.3f}] top {rec['top']}"
+                  f", {rec['divergences']} div, R-hat {rec['max_rhat']:.3f}; "
+                  f"{len(records)}/{len(jobs)} done, {time.perf_counter() - start:.0f} s",
+                  flush=True)
+
+        run_commands(commands, jobs=args.jobs, on_done=done)
     return [records[i] for i in sorted(records)]
 
 

@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import subprocess
 import sys
 import tempfile
 import time
@@ -73,6 +72,8 @@ def main() -> None:
     parser.add_argument("--model", default="taxa_errors")
     parser.add_argument("--draws", type=int, default=500)
     parser.add_argument("--warmup", type=int, default=700)
+    parser.add_argument("--jobs", type=int, default=1,
+                        help="datasets fitted at a time (each fit is single-threaded)")
     parser.add_argument("--out", default="benchmarks/taxon_coverage.json")
     parser.add_argument("--worker", type=int, help=argparse.SUPPRESS)
     parser.add_argument("--record", help=argparse.SUPPRESS)
@@ -86,19 +87,26 @@ def main() -> None:
         Path(args.record).write_text(json.dumps(record), encoding="utf-8")
         return
     start = time.perf_counter()
-    records = []
+    from allolaw.testing.workers import run_commands
+
+    seeds = list(range(1, args.seeds + 1))
+    finished: list[dict] = []
     with tempfile.TemporaryDirectory() as tmp:
-        for seed in range(1, args.seeds + 1):
-            out = Path(tmp) / f"{seed}.json"
-            subprocess.run([sys.executable, __file__, "--worker", str(seed), "--record",
-                            str(out), "--model", args.model, "--draws", str(args.draws),
-                            "--warmup", str(args.warmup)], check=True)
-            records.append(json.loads(out.read_text(encoding="utf-8")))
-            hits = sum(sum(r["inside"]) for r in records)
-            total = sum(len(r["inside"]) for r in records)
-            print(f"dataset {seed}/{args.seeds}: {sum(records[-1]['inside'])} of "
-                  f"{len(records[-1]['inside'])} intervals cover; so far {hits}/{total}, "
+        outs = [Path(tmp) / f"{seed}.json" for seed in seeds]
+        commands = [[sys.executable, __file__, "--worker", str(seed), "--record", str(out),
+                     "--model", args.model, "--draws", str(args.draws), "--warmup",
+                     str(args.warmup)] for seed, out in zip(seeds, outs, strict=True)]
+
+        def done(i: int) -> None:
+            finished.append(json.loads(outs[i].read_text(encoding="utf-8")))
+            hits = sum(sum(r["inside"]) for r in finished)
+            total = sum(len(r["inside"]) for r in finished)
+            print(f"dataset {seeds[i]}/{args.seeds}: {sum(finished[-1]['inside'])} of "
+                  f"{len(finished[-1]['inside'])} intervals cover; so far {hits}/{total}, "
                   f"{time.perf_counter() - start:.0f} s", flush=True)
+
+        run_commands(commands, jobs=args.jobs, on_done=done)
+        records = [json.loads(out.read_text(encoding="utf-8")) for out in outs]
     hits = sum(sum(r["inside"]) for r in records)
     total = sum(len(r["inside"]) for r in records)
     share = hits / total

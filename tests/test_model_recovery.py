@@ -129,7 +129,7 @@ def test_taxon_exponent_intervals_cover_the_demo_truth(tmp_path):
 
     out = tmp_path / "coverage.json"
     subprocess.run([sys.executable, str(REPO / "benchmarks" / "taxon_coverage.py"),
-                    "--seeds", "4", "--out", str(out)], check=True, cwd=REPO)
+                    "--seeds", "4", "--jobs", "2", "--out", str(out)], check=True, cwd=REPO)
     result = json.loads(out.read_text())
     assert result["intervals"] == 40
     assert 0.7 <= result["coverage"] <= 1.0, result["coverage"]
@@ -158,7 +158,7 @@ def test_sbc_ranks_of_the_curved_errors_model_are_uniform_and_intervals_cover(tm
     # study: 20 replicates, 5 bins; the chi-square test rejects at p < 0.001 only. The
     # full study is benchmarks/calibration.py, run here on 20 replicates (in worker
     # processes of 10, as the script does for long studies: one process compiling a JAX
-    # sampler per replicate crashed after many fits).
+    # sampler per replicate crashed after many fits; the two run side by side).
     import subprocess
     import sys
 
@@ -168,8 +168,8 @@ def test_sbc_ranks_of_the_curved_errors_model_are_uniform_and_intervals_cover(tm
     out = tmp_path / "sbc.json"
     subprocess.run(
         [sys.executable, str(REPO / "benchmarks" / "calibration.py"), "--replicates", "20",
-         "--per-process", "10", "--bins", "5", "--seed", "5", "--draws", "400", "--warmup",
-         "600", "--out", str(out)], check=True, cwd=REPO,
+         "--per-process", "10", "--jobs", "2", "--bins", "5", "--seed", "5", "--draws",
+         "400", "--warmup", "600", "--out", str(out)], check=True, cwd=REPO,
     )
     result = json.loads(out.read_text())
     assert len(result["ranks"]["exponent"]) == 20
