@@ -218,7 +218,8 @@ def _work(job: dict[str, Any]) -> dict[str, Any]:
     row.update(_quality(idata))
     row["min_ess_per_s"] = row["ess_bulk_min"] / max(sampling, 1e-9)
     row["min_ess_per_wall_s"] = row["ess_bulk_min"] / max(wall, 1e-9)
-    grad = _gradient_seconds(model, backend_used)
+    grad = _gradient_seconds(model, backend_used, idata.attrs.get("compiler", "")
+                             if job["runner"] == "allolaw" else "")
     row["grad_us"] = grad * 1e6
     total_steps = row["steps_per_draw"] * 4 * 2 * draws
     row["limit_s"] = grad * total_steps / cores
@@ -361,9 +362,11 @@ def _quality(idata: Any) -> dict[str, Any]:
     }
 
 
-def _gradient_seconds(model: Any, backend: str, *, repeats: int = 300) -> float:
+def _gradient_seconds(model: Any, backend: str, compiler: str = "", *,
+                      repeats: int = 300) -> float:
     # One log-density + gradient evaluation, in the implementation the backend uses
-    # (pytensor C for pymc, JAX for numpyro, numba for nutpie), at the initial point.
+    # (pytensor C for pymc, JAX for numpyro, nutpie's compiler for nutpie: JAX or numba), at
+    # the initial point.
     point = model.initial_point()
     if backend == "numpyro":
         import jax
@@ -378,7 +381,9 @@ def _gradient_seconds(model: Any, backend: str, *, repeats: int = 300) -> float:
             out = fn(args)
         jax.block_until_ready(out)
         return (time.perf_counter() - start) / repeats
-    mode = "NUMBA" if backend == "nutpie" else None
+    mode = None
+    if backend == "nutpie":
+        mode = "JAX" if compiler == "jax" else "NUMBA"
     fn = model.logp_dlogp_function(ravel_inputs=True, mode=mode)
     fn.set_extra_values({})
     flat = np.concatenate([np.ravel(point[v.name]) for v in model.value_vars])

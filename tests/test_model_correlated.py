@@ -21,7 +21,7 @@ def _correlation_from_partials(z21, z31, z32):
     return np.array([[1.0, z21, z31], [z21, 1.0, r23], [z31, r23, 1.0]])
 
 
-def test_correlated_whitened_terms_give_the_exact_marginal_likelihood():
+def test_correlated_whitened_terms_give_the_exact_marginal_likelihood(tree_form):
     # With correlated deviations each level's step is diag(SD)·L; the trait's density plus
     # the tree potential must still equal the marginal density of the data with every taxon
     # value integrated out, for any standard normals w. Outside check: the dense covariance

@@ -19,7 +19,7 @@ def test_only_the_terms_named_in_vary_get_taxon_deviations():
 
 
 @pytest.mark.parametrize("case", ["two levels, three terms", "one level, intercept only"])
-def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
+def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case, tree_form):
     # The sampler sees each taxon value through its exact conditional given its parent and
     # the data below it (model.terms.taxon_terms), plus a potential (prior density and
     # log-Jacobian). For a law linear in the taxon values with normal noise, the trait's
@@ -91,7 +91,7 @@ def test_whitened_taxon_values_give_the_exact_marginal_likelihood(case):
         assert float(logp(point)) == pytest.approx(expected, abs=1e-7), trial
 
 
-def test_whitened_size_population_gives_the_exact_marginal_density_of_the_true_sizes():
+def test_whitened_size_population_gives_the_exact_marginal_density_of_the_true_sizes(tree_form):
     # With errors in size and taxon levels, the true log sizes follow a nested population
     # (model.terms.size_population): the taxon size means are whitened given the true sizes
     # and the potential `size_tree_density` holds their prior density, the log-Jacobian and
@@ -146,7 +146,7 @@ def test_size_population_has_one_mean_per_taxon_and_none_without_levels():
     assert not any(n.startswith(("taxon_size_mean__", "size_within_sd")) for n in names)
 
 
-def test_whitened_map_is_an_exact_change_of_variables_for_robust_models_too():
+def test_whitened_map_is_an_exact_change_of_variables_for_robust_models_too(tree_form):
     # With Student-t residuals the data messages are only an approximation, but the model
     # must stay exact: the potential plus the N(0, 1) density of w must equal the nested
     # normal prior density of the taxon values θ(w) plus log |det ∂θ/∂w| (change of

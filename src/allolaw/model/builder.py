@@ -206,7 +206,7 @@ def _taxon_parts(spec: ModelSpec, varying: list[str], term_priors: dict[str, Any
         varying, term_priors, {t: pri[f"{t}_sd"]["sd"] for t in varying}, inputs,
         features=feature if whiten else None,
         target=pt.as_tensor_variable(inputs.log_trait) - offset,
-        noise_var=total_sd**2 * pt.ones_like(feature["intercept"]),
+        noise_var=total_sd**2,  # a scalar or one per species (see whitened_op.whitened_map)
         correlation_eta=(float(pri["taxon_correlation"]["eta"])
                          if spec.taxa["correlation"] == "estimated" else None),
         centre_shift=centre_shift,

@@ -17,6 +17,7 @@ from allolaw.model.inputs import Inputs
 from allolaw.model.phylo_terms import size_tree_population
 from allolaw.model.spec import ModelSpec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
+from allolaw.model.whitened_op import use_operation, whitened_map
 from allolaw.phylogeny import Phylogeny
 
 __all__ = ["SIZE_MEASUREMENT"]
@@ -132,6 +133,7 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
     index = inputs.taxa[levels[-1]].index
     true = None
     P = h = None
+    root = [float(population["mean"])]
     if whiten:
         # free: the shift of each true size from its measured value (start: zero shift)
         if near is None:
@@ -139,10 +141,16 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
             true = pm.Deterministic("true_log_size", inputs.log_size + shift, dims="species")
         else:
             true = true_near_measured(inputs.log_size, near)
-        ones = pt.ones_like(true)
-        P, h = leaf_information([ones], true, within**2 * ones, index, len(tree.depths[-1]))
-    info, chol = pass_up(tree, step, P, h)
-    values, density = pass_down(tree, step, [float(population["mean"])], [w], info, chol)
+        ones = pt.as_tensor_variable(np.ones(len(inputs.log_size)))
+        if not use_operation():
+            P, h = leaf_information([ones], true, within**2 * ones, index,
+                                    len(tree.depths[-1]))
+    if whiten and use_operation():
+        # the same map as the passes below, as one operation (model/whitened_op.py)
+        values, density = whitened_map(tree, step, root, [w], [ones], true, within**2, index)
+    else:
+        info, chol = pass_up(tree, step, P, h)
+        values, density = pass_down(tree, step, root, [w], info, chol)
     pm.Deterministic("size_mean", values[0][0][0])
     for lv, level in enumerate(levels):
         pm.Deterministic(f"taxon_size_mean__{level}", values[lv + 1][0], dims=level)
@@ -215,15 +223,20 @@ def taxon_terms(
                         eta=correlation_eta, shift=centre_shift)
              for lv, level in enumerate(levels)]
 
-    # upward pass: information (precision P, vector h) of each node from the data below it
-    if features is not None:
-        P, h = leaf_information([features[term] for term in terms], target, noise_var,
-                                inputs.taxa[levels[-1]].index, len(tree.depths[-1]))
+    if features is not None and use_operation():
+        # the same map as the passes below, as one operation (model/whitened_op.py)
+        values, density = whitened_map(tree, step, m0, w, [features[term] for term in terms],
+                                       target, noise_var, inputs.taxa[levels[-1]].index)
     else:
-        P, h = None, None
-    info, chol = pass_up(tree, step, P, h)
-    # downward pass: each node given its parent value and its own information
-    values, density = pass_down(tree, step, m0, w, info, chol)
+        # upward pass: information (precision P, vector h) of each node from the data below
+        if features is not None:
+            P, h = leaf_information([features[term] for term in terms], target, noise_var,
+                                    inputs.taxa[levels[-1]].index, len(tree.depths[-1]))
+        else:
+            P, h = None, None
+        info, chol = pass_up(tree, step, P, h)
+        # downward pass: each node given its parent value and its own information
+        values, density = pass_down(tree, step, m0, w, info, chol)
     if features is not None:
         pm.Potential("taxon_tree_density", density)
 
