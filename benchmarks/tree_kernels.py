@@ -127,7 +127,7 @@ def _measure(build: Any, *, repeats: int, calls: int) -> tuple[dict[str, Any], n
     flat = np.concatenate([np.ravel(point[v.name]) for v in model.value_vars])
     flat = flat + np.random.default_rng(0).normal(0.0, 0.1, size=flat.shape)
     # the program nutpie runs: PyTensor's graph of density + gradient, funcified and jitted
-    args = [flat] + [np.asarray(v.data) for v in fgraph.inputs[1:]]
+    args = [flat] + [np.asarray(v.get_value()) for v in fgraph.inputs[1:]]
     jitted = jax.jit(jax_funcify(fgraph))
     start = time.perf_counter()
     compiled = jitted.lower(*args).compile()

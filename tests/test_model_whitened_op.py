@@ -15,7 +15,12 @@ import pytest
 from allolaw.model.builder import build_model
 from allolaw.model.spec import parse_spec
 from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
-from allolaw.model.whitened_op import WhitenedTree, use_operation, whitened_map
+from allolaw.model.whitened_op import (
+    OPERATION_BELOW_ROWS,
+    WhitenedTree,
+    use_operation,
+    whitened_map,
+)
 from test_model_builder import _nested_data
 
 
@@ -135,7 +140,18 @@ def test_model_logp_graph_holds_one_tree_operation_per_tree_and_the_same_density
 def test_unknown_tree_form_is_refused_naming_the_variable(monkeypatch):
     monkeypatch.setenv("ALLOLAW_WHITENED_TREE", "fast")
     with pytest.raises(ValueError, match="ALLOLAW_WHITENED_TREE"):
-        use_operation()
+        use_operation(10)
+
+
+def test_default_form_is_the_operation_for_small_tables_only(monkeypatch):
+    monkeypatch.delenv("ALLOLAW_WHITENED_TREE", raising=False)
+    monkeypatch.delenv("ALLOLAW_NUTPIE_BACKEND", raising=False)
+    assert use_operation(OPERATION_BELOW_ROWS - 1)
+    assert not use_operation(OPERATION_BELOW_ROWS)
+    monkeypatch.setenv("ALLOLAW_WHITENED_TREE", "operation")
+    assert use_operation(10 * OPERATION_BELOW_ROWS)
+    monkeypatch.setenv("ALLOLAW_WHITENED_TREE", "graph")
+    assert not use_operation(10)
 
 
 def test_operation_refuses_inputs_of_the_wrong_rank():
@@ -146,7 +162,8 @@ def test_operation_refuses_inputs_of_the_wrong_rank():
 
 def test_forced_numba_compiler_builds_the_pytensor_form(monkeypatch):
     # numba has no implementation of the operation; it would call it through Python
+    monkeypatch.setenv("ALLOLAW_WHITENED_TREE", "operation")
     monkeypatch.setenv("ALLOLAW_NUTPIE_BACKEND", "numba")
-    assert not use_operation()
-    monkeypatch.delenv("ALLOLAW_NUTPIE_BACKEND")
-    assert use_operation()
+    assert not use_operation(10)
+    monkeypatch.setenv("ALLOLAW_NUTPIE_BACKEND", "jax")
+    assert use_operation(10)

@@ -142,10 +142,10 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
         else:
             true = true_near_measured(inputs.log_size, near)
         ones = pt.as_tensor_variable(np.ones(len(inputs.log_size)))
-        if not use_operation():
+        if not use_operation(len(inputs.log_size)):
             P, h = leaf_information([ones], true, within**2 * ones, index,
                                     len(tree.depths[-1]))
-    if whiten and use_operation():
+    if whiten and use_operation(len(inputs.log_size)):
         # the same map as the passes below, as one operation (model/whitened_op.py)
         values, density = whitened_map(tree, step, root, [w], [ones], true, within**2, index)
     else:
@@ -223,7 +223,7 @@ def taxon_terms(
                         eta=correlation_eta, shift=centre_shift)
              for lv, level in enumerate(levels)]
 
-    if features is not None and use_operation():
+    if features is not None and use_operation(len(inputs.log_size)):
         # the same map as the passes below, as one operation (model/whitened_op.py)
         values, density = whitened_map(tree, step, m0, w, [features[term] for term in terms],
                                        target, noise_var, inputs.taxa[levels[-1]].index)

@@ -4,22 +4,24 @@
 nested size population) as PyTensor operations, k × k blocks entry by entry: one scatter per
 entry and layer for the messages, one gather per entry for the parent values, and PyTensor's
 own gradient of each of them. Compiled with JAX, a log density + gradient of problem B was a
-program of ~370 fused kernels and 26 scatters (benchmarks/README.md, "Where a gradient's time
-goes on B"): the time went to launching many small kernels, not to arithmetic.
+program of ~370 fused kernels and 26 scatters, and PyTensor's rewrites of the graph took
+6–27 s per model (benchmarks/README.md).
 
-Here the same map is :class:`WhitenedTree`, one operation whose value is one JAX function
-(:func:`tree_map`): the same entry-by-entry algebra on arrays over a layer's nodes, but the
-layer's message entries leave in one stacked scatter and the parent values arrive in one
-stacked gather, so XLA fuses each layer's arithmetic into a few kernels. Its gradient is a
-second operation, :class:`WhitenedTreeVJP`, which is ``jax.vjp`` of the same function (written
-here because PyTensor has no operation for batched small-matrix Gaussian messages, and
-differentiating our own loop is what JAX does). Outside JAX (PyTensor's C or Python modes,
-used by PyMC's own sampler and the tests), :meth:`perform` calls the same function jitted.
+Here the same map is :class:`WhitenedTree`, one operation whose value is one JAX function: the
+leaf layer's information summed from the data (:func:`leaf_rows`, one scatter), then
+:func:`tree_map`, the same entry-by-entry algebra on arrays over a layer's nodes, with each
+layer's message entries in one stacked scatter and the parent values in one stacked gather.
+Its gradient is a second operation, :class:`WhitenedTreeVJP`, ``jax.vjp`` of
+:func:`tree_map` from the leaf information up, followed by PyTensor's own gradient of
+:func:`leaf_rows` (a gather and element-wise steps over the data). Written here because
+PyTensor has no operation for batched small-matrix Gaussian messages. Outside JAX (PyTensor's
+C or Python modes: PyMC's own sampler, the tests) :meth:`perform` calls the same functions
+jitted.
 
-The PyTensor form in :mod:`allolaw.model.treemsg` stays the reference: the tests compare
-value and gradient of both on trees of one to three layers with diagonal and full steps. The
-environment variable ``ALLOLAW_WHITENED_TREE=graph`` builds models with that form instead (for
-before/after measurements).
+The PyTensor form in :mod:`allolaw.model.treemsg` stays the reference: the tests compare the
+value and gradient of both on trees of one to three layers with diagonal and full steps, and
+the exact-marginal tests of the taxon terms run with both. Which form a model gets:
+:func:`use_operation`.
 """
 
 from __future__ import annotations
@@ -36,47 +38,69 @@ from pytensor.graph.op import Op
 
 from allolaw.model.treemsg import LayeredTree, step_matrix
 
-__all__ = ["WhitenedTree", "WhitenedTreeVJP", "tree_map", "use_operation", "whitened_map"]
+__all__ = ["WhitenedTree", "WhitenedTreeVJP", "leaf_rows", "tree_map", "use_operation",
+           "whitened_map"]
 
 
-def use_operation() -> bool:
-    """Whether models write the whitened map as :class:`WhitenedTree` (default) or as the
-    PyTensor graph of :mod:`allolaw.model.treemsg` (``ALLOLAW_WHITENED_TREE=graph``).
+#: With ``ALLOLAW_WHITENED_TREE=auto`` (the default) models of fewer data rows than this write
+#: the whitened map as :class:`WhitenedTree`, larger ones as the PyTensor form. Measured by
+#: benchmarks/tree_kernels.py (2026-12-05, idle machine, µs per log density + gradient,
+#: PyTensor form → operation): island demo fits (172 species) 154 → 120, 252 → 130,
+#: 267 → 166, 481 → 359; B (600) 175 → 185; C (3,000) 434 → 699; D (10,000) 1,423 → 1,786.
+#: The operation's PyTensor rewrites take 1–4 s instead of 6–27 s at every size; why the
+#: large programs run slower with it is not found yet (the operation's own parts, timed
+#: alone on C, sum to about 250 µs).
+OPERATION_BELOW_ROWS = 1000
 
-    With nutpie's numba compiler forced for every fit (``ALLOLAW_NUTPIE_BACKEND=numba``) the
-    graph form is used: the operation has no numba implementation, and numba would call it
-    through Python at every gradient.
+
+def use_operation(n_rows: int) -> bool:
+    """Whether a model of ``n_rows`` data rows writes the whitened map as
+    :class:`WhitenedTree` or as the PyTensor graph of :mod:`allolaw.model.treemsg`.
+
+    ``ALLOLAW_WHITENED_TREE``: ``auto`` (default; :data:`OPERATION_BELOW_ROWS`),
+    ``operation`` or ``graph`` (for before/after measurements and tests). With nutpie's
+    numba compiler forced for every fit (``ALLOLAW_NUTPIE_BACKEND=numba``) always the graph
+    form: the operation has no numba implementation, and numba would call it through Python
+    at every gradient.
     """
-    choice = os.environ.get("ALLOLAW_WHITENED_TREE", "operation")
-    if choice not in ("operation", "graph"):
-        msg = f"ALLOLAW_WHITENED_TREE must be 'operation' or 'graph', not {choice!r}"
+    choice = os.environ.get("ALLOLAW_WHITENED_TREE", "auto")
+    if choice not in ("auto", "operation", "graph"):
+        msg = f"ALLOLAW_WHITENED_TREE must be 'auto', 'operation' or 'graph', not {choice!r}"
         raise ValueError(msg)
-    return choice == "operation" and os.environ.get("ALLOLAW_NUTPIE_BACKEND") != "numba"
+    if os.environ.get("ALLOLAW_NUTPIE_BACKEND") == "numba" or choice == "graph":
+        return False
+    return choice == "operation" or n_rows < OPERATION_BELOW_ROWS
 
 
 # ---------------------------------------------------------------------------------------------
 # The map on arrays (xp = jax.numpy; NumPy works too for the forward value)
 
 
-def tree_map(w: Any, D: Any, feats: Any, target: Any, noise_var: Any, *, layer_sizes: tuple,
-             parent_positions: tuple, index: Any, root_mean: tuple, xp: Any) -> Any:
+def leaf_rows(feats: Any, target: Any, noise_var: Any, xp: Any) -> Any:
+    """Per datum, its terms of the leaf information: the entries ``P_ij`` (``j ≤ i``, row by
+    row) and ``h_i`` of ``x xᵀ / v`` and ``x y / v``, ``(k(k+1)/2 + k, n)``; ``feats`` is a
+    sequence of k arrays (``xp`` is ``pytensor.tensor``, ``numpy`` or ``jax.numpy``)."""
+    k = len(feats)
+    weight = 1.0 / noise_var
+    xw = [f * weight for f in feats]
+    rows = [feats[i] * xw[j] for i in range(k) for j in range(i + 1)]
+    return xp.stack(rows + [xw[i] * target for i in range(k)])
+
+
+def tree_map(w: Any, D: Any, leaf: Any, *, layer_sizes: tuple, parent_positions: tuple,
+             root_mean: tuple, xp: Any, **_: Any) -> Any:
     """Node values ``(k, n_nodes)`` and the change-of-variables density of the whitened map.
 
-    Same algebra as ``leaf_information`` + ``pass_up`` + ``pass_down`` of
-    :mod:`allolaw.model.treemsg` (see there): ``w`` one standard normal per term and node (nodes
-    numbered root first, layer by layer), ``D`` the step of each layer ``(layers, k, k)``,
-    ``feats`` ``(k, n)``, ``target`` and ``noise_var`` ``(n,)``, ``index`` the leaf of each
-    datum; ``parent_positions[d]`` each node's parent's position in layer ``d − 1``.
+    Same algebra as ``pass_up`` + ``pass_down`` of :mod:`allolaw.model.treemsg` (see there):
+    ``w`` one standard normal per term and node (nodes numbered root first, layer by layer),
+    ``D`` the step of each layer ``(layers, k, k)``, ``leaf`` the deepest layer's information
+    (:func:`leaf_information`); ``parent_positions[d]`` each node's parent's position in
+    layer ``d − 1``.
     """
     k = D.shape[-1]
     n_layers = len(layer_sizes)
-    weight = 1.0 / noise_var
-    xw = feats * weight
     tri = [(i, j) for i in range(k) for j in range(i + 1)]
-    # leaf information: every entry of P and h in one scatter
-    rows = [feats[i] * xw[j] for i, j in tri] + [xw[i] * target for i in range(k)]
-    sums = _segment_sum(xp.stack(rows), index, layer_sizes[-1], xp)
-    P, h = _unpack(sums, tri, k)
+    P, h = _unpack(leaf, tri, k)
 
     info: list[Any] = [None] * n_layers
     chol: list[Any] = [None] * n_layers
@@ -206,11 +230,11 @@ class _TreeOpBase(Op):
 
     def __init__(self, layer_sizes: tuple, parent_positions: tuple, index: tuple,
                  root_mean: tuple, noise_ndim: int = 1) -> None:
-        self.noise_ndim = int(noise_ndim)
         self.layer_sizes = tuple(int(s) for s in layer_sizes)
         self.parent_positions = tuple(tuple(int(p) for p in pos) for pos in parent_positions)
         self.index = tuple(int(i) for i in index)
         self.root_mean = tuple(float(m) for m in root_mean)
+        self.noise_ndim = int(noise_ndim)
 
     def arrays(self) -> dict[str, Any]:
         # the static tree as NumPy arrays (constants of the compiled program)
@@ -219,11 +243,24 @@ class _TreeOpBase(Op):
                                           for p in self.parent_positions),
                 "index": np.asarray(self.index, np.int64), "root_mean": self.root_mean}
 
+    def perform(self, node: Apply, inputs: list[Any], output_storage: list[Any]) -> None:
+        for out, value in zip(output_storage, _jitted(self)(*inputs), strict=True):
+            out[0] = np.asarray(value, np.float64)
+
 
 class WhitenedTree(_TreeOpBase):
-    """``(w, D, feats, target, noise_var) → (values, density)`` of :func:`tree_map`.
+    """``(w, D, feats, target, noise_var) → (values, density, leaf)`` of :func:`tree_map`.
 
     ``noise_var`` is a scalar (``noise_ndim=0``) or one value per datum (``noise_ndim=1``).
+    ``leaf`` is the leaf layer's information (:func:`leaf_rows` summed by leaf), kept for the
+    gradient.
+
+    The gradient: :class:`WhitenedTreeVJP` (``jax.vjp`` of the tree's part, from the leaf
+    information up; a few hundred nodes at most) for ``w``, ``D`` and the leaf information,
+    then PyTensor's own gradient of :func:`leaf_rows` for the data's part (a gather and
+    element-wise steps over the data). Differentiating the data's part with ``jax.vjp``
+    inside the operation made problems C and D (3,000 and 10,000 species) slower than the
+    PyTensor form (benchmarks/README.md, "The whitened tree as one operation").
     """
 
     def make_node(self, w: Any, D: Any, feats: Any, target: Any, noise_var: Any) -> Apply:
@@ -234,42 +271,56 @@ class WhitenedTree(_TreeOpBase):
             msg = ("WhitenedTree takes w (k, nodes), D (layers, k, k), feats (k, n), target (n) "
                    "and the noise variance (scalar or (n))")
             raise TypeError(msg)
-        return Apply(self, inputs, [pt.dmatrix(), pt.dscalar()])
-
-    def perform(self, node: Apply, inputs: list[Any], output_storage: list[Any]) -> None:
-        values, density = _jitted(self)(*inputs)
-        output_storage[0][0] = np.asarray(values, np.float64)
-        output_storage[1][0] = np.asarray(density, np.float64)
+        return Apply(self, inputs, [pt.dmatrix(), pt.dscalar(), pt.dmatrix()])
 
     def infer_shape(self, fgraph: Any, node: Apply, shapes: list[Any]) -> list[Any]:
-        return [shapes[0], ()]
+        k = shapes[0][0]
+        return [shapes[0], (), (k * (k + 1) // 2 + k, self.layer_sizes[-1])]
 
     def L_op(self, inputs: list[Any], outputs: list[Any],  # noqa: N802 - PyTensor's name
              output_grads: list[Any]) -> list[Any]:
-        g_values, g_density = output_grads
+        from pytensor.gradient import grad
+
+        g_values, g_density, g_leaf = output_grads
+        if not isinstance(g_leaf.type, DisconnectedType):
+            msg = "WhitenedTree: the leaf information output is not differentiable"
+            raise NotImplementedError(msg)
         if isinstance(g_values.type, DisconnectedType):
             g_values = pt.zeros_like(outputs[0])
         if isinstance(g_density.type, DisconnectedType):
             g_density = pt.zeros_like(outputs[1])
+        w, D, feats, target, noise_var = inputs
         vjp = WhitenedTreeVJP(self.layer_sizes, self.parent_positions, self.index,
                               self.root_mean, self.noise_ndim)
-        return vjp(*inputs, g_values, g_density)
+        g_w, g_D, g_leaf = vjp(w, D, outputs[2], g_values, g_density)
+        k = self.k_of(w)
+        rows = leaf_rows([feats[i] for i in range(k)], target, noise_var, pt)
+        # the sum by leaf is linear: its transpose gathers each datum's leaf cotangent
+        g_rows = g_leaf[:, np.asarray(self.index, np.int64)]
+        g_data = grad(None, [feats, target, noise_var], known_grads={rows: g_rows},
+                      disconnected_inputs="ignore", return_disconnected="zero")
+        return [g_w, g_D, *g_data]
+
+    @staticmethod
+    def k_of(w: Any) -> int:
+        k = w.type.shape[0]
+        if k is None:
+            msg = "WhitenedTree needs the number of terms (w's first dimension) known statically"
+            raise ValueError(msg)
+        return int(k)
 
 
 class WhitenedTreeVJP(_TreeOpBase):
-    """Cotangents of :class:`WhitenedTree`'s five inputs (``jax.vjp`` of :func:`tree_map`)."""
+    """``(w, D, leaf, g_values, g_density) → (g_w, g_D, g_leaf)``: ``jax.vjp`` of
+    :func:`tree_map` (the tree's part only)."""
 
     def make_node(self, *args: Any) -> Apply:
         _register_backends()
         inputs = [pt.as_tensor_variable(v).astype("float64") for v in args]
-        return Apply(self, inputs, [v.type() for v in inputs[:5]])
-
-    def perform(self, node: Apply, inputs: list[Any], output_storage: list[Any]) -> None:
-        for out, value in zip(output_storage, _jitted(self)(*inputs), strict=True):
-            out[0] = np.asarray(value, np.float64)
+        return Apply(self, inputs, [v.type() for v in inputs[:3]])
 
     def infer_shape(self, fgraph: Any, node: Apply, shapes: list[Any]) -> list[Any]:
-        return list(shapes[:5])
+        return list(shapes[:3])
 
 
 def _jax_function(op: _TreeOpBase) -> Any:
@@ -277,16 +328,23 @@ def _jax_function(op: _TreeOpBase) -> Any:
     import jax.numpy as jnp
 
     arrays = op.arrays()
+    index = arrays["index"]
+    n_leaves = arrays["layer_sizes"][-1]
 
-    def forward(w: Any, D: Any, feats: Any, target: Any, noise_var: Any) -> Any:
-        return tree_map(w, D, feats, target, noise_var, xp=jnp, **arrays)
+    def tree(w: Any, D: Any, leaf: Any) -> Any:
+        return tree_map(w, D, leaf, xp=jnp, **arrays)
 
     if isinstance(op, WhitenedTree):
+        def forward(w: Any, D: Any, feats: Any, target: Any, noise_var: Any) -> Any:
+            rows = leaf_rows([feats[i] for i in range(feats.shape[0])], target, noise_var, jnp)
+            leaf = _segment_sum(rows, index, n_leaves, jnp)
+            values, density = tree(w, D, leaf)
+            return values, density, leaf
+
         return forward
 
-    def backward(w: Any, D: Any, feats: Any, target: Any, noise_var: Any, g_values: Any,
-                 g_density: Any) -> Any:
-        _, pullback = jax.vjp(forward, w, D, feats, target, noise_var)
+    def backward(w: Any, D: Any, leaf: Any, g_values: Any, g_density: Any) -> Any:
+        _, pullback = jax.vjp(tree, w, D, leaf)
         return pullback((g_values, g_density))
 
     return backward
@@ -309,16 +367,16 @@ def _merge_sibling_gradients(fgraph: Any, node: Apply) -> Any:
     # cotangents: the first takes the sum, the second's outputs become zeros.
     others = [client for client, _ in fgraph.clients[node.inputs[0]]
               if client is not node and client.op == node.op
-              and all(a is b for a, b in zip(client.inputs[:5], node.inputs[:5], strict=True))]
+              and all(a is b for a, b in zip(client.inputs[:3], node.inputs[:3], strict=True))]
     if not others:
         return None
     other = others[0]
-    combined = node.op(*node.inputs[:5], node.inputs[5] + other.inputs[5],
-                       node.inputs[6] + other.inputs[6])
+    combined = node.op(*node.inputs[:3], node.inputs[3] + other.inputs[3],
+                       node.inputs[4] + other.inputs[4])
     replacements = dict(zip(node.outputs, combined, strict=True))
     # zeros shaped like the primal inputs (zeros_like of the outputs would keep `other`)
     replacements.update({out: pt.zeros_like(x)
-                         for out, x in zip(other.outputs, other.inputs[:5], strict=True)})
+                         for out, x in zip(other.outputs, other.inputs[:3], strict=True)})
     return replacements
 
 
@@ -348,16 +406,17 @@ def whitened_map(tree: LayeredTree, step: list[list[Any]], root_mean: list[float
     """``leaf_information`` + ``pass_up`` + ``pass_down`` of :mod:`~allolaw.model.treemsg` as one
     :class:`WhitenedTree`; returns the values per layer (k tensors each) and the density."""
     k = len(w)
-    target = pt.as_tensor_variable(target).astype("float64")
-    # a constant shape: target.shape would tie every input to the target's graph, which PyMC
-    # clones differently for the potential and for the likelihood; the two copies of the
-    # operation would then not merge into one computation
+    index = np.asarray(index)
+    # constant shapes: target.shape would tie every input to the target's graph, which PyMC
+    # copies differently for the likelihood and for the potentials, and the two copies of
+    # the operation would not merge into one computation
     shape = (len(index),)
+    target = pt.as_tensor_variable(target).astype("float64")
     feats = pt.stack([pt.broadcast_to(pt.as_tensor_variable(f).astype("float64"), shape)
                       for f in features])
     # the noise variance as given (a scalar or one per datum), not broadcast here: PyMC
     # rewrites the likelihood's copy of the graph (lifting the broadcast into the power) but
-    # not the potential's, and two differently written inputs would keep two operations
+    # not the potentials', and two differently written inputs would keep two operations
     noise = pt.as_tensor_variable(noise_var).astype("float64")
     if noise.ndim > 1:
         msg = "whitened_map: the noise variance must be a scalar or one value per datum"
@@ -368,7 +427,7 @@ def whitened_map(tree: LayeredTree, step: list[list[Any]], root_mean: list[float
     parents = [()] + [tuple(tree.parent[nodes] - tree.depths[d - 1][0])
                       for d, nodes in enumerate(tree.depths) if d > 0]
     op = WhitenedTree(tuple(len(nodes) for nodes in tree.depths), tuple(parents),
-                      tuple(np.asarray(index)), tuple(root_mean), noise.ndim)
-    values, density = op(W, D, feats, target, noise)
+                      tuple(index), tuple(root_mean), noise.ndim)
+    values, density, _ = op(W, D, feats, target, noise)
     per_layer = [[values[i, nodes[0]:nodes[-1] + 1] for i in range(k)] for nodes in tree.depths]
     return per_layer, density
