@@ -38,6 +38,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from allolaw.model.compiling import per_draw_compile
 from allolaw.model.mass_matrix import MASS_ADAPTED, ChainMetric, mass_matrix_from_draws
 
 if TYPE_CHECKING:
@@ -315,9 +316,13 @@ def _nuts_step(model: Any, metric: ChainMetric, target_acceptance: float) -> Any
         msg = (f"the mass matrix has {metric.size} entries a side; the model's unconstrained "
                "values have a different size")
         raise ValueError(msg)
+    # the log density + gradient compiled with JAX as for nutpie's fit (one jitted program,
+    # persistent cache), not PyTensor's C mode: the whitened tree operation's C-mode path
+    # calls its jitted JAX functions from Python at every gradient (model/whitened_op.py)
     return pm.NUTS(vars=value_vars, model=model, target_accept=target_acceptance,
                    potential=metric.potential(0),
-                   step_scale=float(metric.step_size[0]) * metric.size ** 0.25)
+                   step_scale=float(metric.step_size[0]) * metric.size ** 0.25,
+                   compile_kwargs=per_draw_compile())
 
 
 def _run_one_chain(model: Any, idata: Any, metric: ChainMetric, c: int, step: Any, *,
