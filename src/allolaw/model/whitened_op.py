@@ -36,7 +36,7 @@ from pytensor.gradient import DisconnectedType
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op
 
-from allolaw.model.treemsg import LayeredTree, step_matrix
+from allolaw.model.treemsg import LayeredTree, back_solve, cho_solve, step_matrix
 
 __all__ = ["WhitenedTree", "WhitenedTreeVJP", "leaf_rows", "tree_map", "use_operation",
            "whitened_map"]
@@ -115,8 +115,8 @@ def tree_map(w: Any, D: Any, leaf: Any, *, layer_sizes: tuple, parent_positions:
         if d == 0:
             break
         # message to the parent: Q = P − PD B⁻¹ PDᵀ, g = h − PD B⁻¹ Dᵀ h (treemsg.pass_up)
-        Y = [_cho_solve(L, PD[c]) for c in range(k)]
-        z = _cho_solve(L, [_sum(Dd[m, i] * h[m] for m in range(k)) for i in range(k)])
+        Y = [cho_solve(L, PD[c]) for c in range(k)]
+        z = cho_solve(L, [_sum(Dd[m, i] * h[m] for m in range(k)) for i in range(k)])
         Q = {(i, j): P[i][j] - _sum(PD[i][m] * Y[j][m] for m in range(k)) for i, j in tri}
         g = [h[i] - _sum(PD[i][m] * z[m] for m in range(k)) for i in range(k)]
         rows = [Q[i, j] for i, j in tri] + g
@@ -138,8 +138,8 @@ def tree_map(w: Any, D: Any, leaf: Any, *, layer_sizes: tuple, parent_positions:
         P, h = info[d]
         L = chol[d]
         resid = [h[i] - _sum(P[i][j] * parent[j] for j in range(k)) for i in range(k)]
-        a = _cho_solve(L, [_sum(Dd[m, i] * resid[m] for m in range(k)) for i in range(k)])
-        e = _back_solve(L, wd)
+        a = cho_solve(L, [_sum(Dd[m, i] * resid[m] for m in range(k)) for i in range(k)])
+        e = back_solve(L, wd)
         u = [a[i] + e[i] for i in range(k)]
         values.append(xp.stack([parent[i] + _sum(Dd[i, j] * u[j] for j in range(k))
                                 for i in range(k)]))
@@ -194,31 +194,6 @@ def _cholesky(B: list[list[Any]], xp: Any) -> list[list[Any]]:
                 s = s - L[i][m] * L[j][m]
             L[i][j] = s / L[j][j]
     return L
-
-
-def _forward_solve(L: list[list[Any]], b: list[Any]) -> list[Any]:
-    y: list[Any] = []
-    for i in range(len(b)):
-        s = b[i]
-        for m in range(i):
-            s = s - L[i][m] * y[m]
-        y.append(s / L[i][i])
-    return y
-
-
-def _back_solve(L: list[list[Any]], y: list[Any]) -> list[Any]:
-    k = len(y)
-    x: list[Any] = [None] * k
-    for i in range(k - 1, -1, -1):
-        s = y[i]
-        for m in range(i + 1, k):
-            s = s - L[m][i] * x[m]
-        x[i] = s / L[i][i]
-    return x
-
-
-def _cho_solve(L: list[list[Any]], b: list[Any]) -> list[Any]:
-    return _back_solve(L, _forward_solve(L, b))
 
 
 # ---------------------------------------------------------------------------------------------
