@@ -16,8 +16,8 @@ from allolaw.model.error_sd import true_near_measured
 from allolaw.model.inputs import Inputs
 from allolaw.model.phylo_terms import size_tree_population
 from allolaw.model.spec import ModelSpec
-from allolaw.model.treemsg import layered_tree, leaf_information, pass_down, pass_up
-from allolaw.model.whitened_op import use_operation, whitened_map
+from allolaw.model.treemsg import layered_tree, pass_down, pass_up
+from allolaw.model.whitened_op import whitened_map
 from allolaw.phylogeny import Phylogeny
 
 __all__ = ["SIZE_MEASUREMENT"]
@@ -132,7 +132,6 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
     step = [[pt.as_tensor_variable(float(population["sd"]))]] + [[sd] for sd in sds]
     index = inputs.taxa[levels[-1]].index
     true = None
-    P = h = None
     root = [float(population["mean"])]
     if whiten:
         # free: the shift of each true size from its measured value (start: zero shift)
@@ -142,14 +141,9 @@ def size_population(inputs: Inputs, population: dict[str, float], *, whiten: boo
         else:
             true = true_near_measured(inputs.log_size, near)
         ones = pt.as_tensor_variable(np.ones(len(inputs.log_size)))
-        if not use_operation(len(inputs.log_size)):
-            P, h = leaf_information([ones], true, within**2 * ones, index,
-                                    len(tree.depths[-1]))
-    if whiten and use_operation(len(inputs.log_size)):
-        # the same map as the passes below, as one operation (model/whitened_op.py)
         values, density = whitened_map(tree, step, root, [w], [ones], true, within**2, index)
     else:
-        info, chol = pass_up(tree, step, P, h)
+        info, chol = pass_up(tree, step, None, None)
         values, density = pass_down(tree, step, root, [w], info, chol)
     pm.Deterministic("size_mean", values[0][0][0])
     for lv, level in enumerate(levels):
@@ -223,19 +217,13 @@ def taxon_terms(
                         eta=correlation_eta, shift=centre_shift)
              for lv, level in enumerate(levels)]
 
-    if features is not None and use_operation(len(inputs.log_size)):
-        # the same map as the passes below, as one operation (model/whitened_op.py)
+    if features is not None:
+        # messages up the tree from the data, values drawn down it (model/whitened_op.py)
         values, density = whitened_map(tree, step, m0, w, [features[term] for term in terms],
                                        target, noise_var, inputs.taxa[levels[-1]].index)
     else:
-        # upward pass: information (precision P, vector h) of each node from the data below
-        if features is not None:
-            P, h = leaf_information([features[term] for term in terms], target, noise_var,
-                                    inputs.taxa[levels[-1]].index, len(tree.depths[-1]))
-        else:
-            P, h = None, None
-        info, chol = pass_up(tree, step, P, h)
-        # downward pass: each node given its parent value and its own information
+        # no data messages: the plain non-centred form
+        info, chol = pass_up(tree, step, None, None)
         values, density = pass_down(tree, step, m0, w, info, chol)
     if features is not None:
         pm.Potential("taxon_tree_density", density)

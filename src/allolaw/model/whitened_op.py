@@ -36,7 +36,15 @@ from pytensor.gradient import DisconnectedType
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op
 
-from allolaw.model.treemsg import LayeredTree, back_solve, cho_solve, step_matrix
+from allolaw.model.treemsg import (
+    LayeredTree,
+    back_solve,
+    cho_solve,
+    leaf_information,
+    pass_down,
+    pass_up,
+    step_matrix,
+)
 
 __all__ = ["WhitenedTree", "WhitenedTreeVJP", "leaf_rows", "tree_map", "use_operation",
            "whitened_map"]
@@ -73,7 +81,7 @@ def use_operation(n_rows: int) -> bool:
 
 
 # ---------------------------------------------------------------------------------------------
-# The map on arrays (xp = jax.numpy; NumPy works too for the forward value)
+# The map on arrays (xp = jax.numpy; leaf_rows also takes pytensor.tensor)
 
 
 def leaf_rows(feats: Any, target: Any, noise_var: Any, xp: Any) -> Any:
@@ -173,10 +181,6 @@ def _unpack(sums: Any, tri: list[tuple[int, int]], k: int) -> tuple[list[list[An
 
 def _segment_sum(rows: Any, index: Any, n: int, xp: Any) -> Any:
     # sums of each row's values by group (one scatter for all rows)
-    if xp is np:
-        out = np.zeros((rows.shape[0], n))
-        np.add.at(out.T, index, rows.T)
-        return out
     return xp.zeros((rows.shape[0], n), rows.dtype).at[:, index].add(rows)
 
 
@@ -378,10 +382,15 @@ def _register_backends() -> None:
 def whitened_map(tree: LayeredTree, step: list[list[Any]], root_mean: list[float],
                  w: list[Any], features: list[Any], target: Any, noise_var: Any,
                  index: np.ndarray) -> tuple[list[list[Any]], Any]:
-    """``leaf_information`` + ``pass_up`` + ``pass_down`` of :mod:`~allolaw.model.treemsg` as one
-    :class:`WhitenedTree`; returns the values per layer (k tensors each) and the density."""
-    k = len(w)
+    """``leaf_information`` + ``pass_up`` + ``pass_down`` of :mod:`~allolaw.model.treemsg`,
+    as one :class:`WhitenedTree` or as those passes (:func:`use_operation`); returns the values
+    per layer (k tensors each) and the density."""
     index = np.asarray(index)
+    if not use_operation(len(index)):
+        P, h = leaf_information(features, target, noise_var, index, len(tree.depths[-1]))
+        info, chol = pass_up(tree, step, P, h)
+        return pass_down(tree, step, root_mean, w, info, chol)
+    k = len(w)
     # constant shapes: target.shape would tie every input to the target's graph, which PyMC
     # copies differently for the likelihood and for the potentials, and the two copies of
     # the operation would not merge into one computation
