@@ -82,7 +82,7 @@ def test_low_rank_fit_without_its_unconstrained_draws_is_reported_not_extended()
                                   backend="nutpie", target_acceptance=0.9)
     assert out is idata
     assert record["status"] == "not available"
-    assert "low-rank part in 2 direction(s)" in record["reason"]
+    assert "low-rank part (2 direction(s))" in record["reason"]
     assert "unconstrained draws" in record["reason"]
     assert record["low_rank_directions_left_out"] == [0, 2]
 
@@ -322,3 +322,50 @@ def test_short_low_rank_fit_is_extended_with_the_draws_covariance_and_samples_th
     log_s = np.log(out.posterior["s"].values[:, 40:])
     assert _within_mcse(log_s, 0.0)
     assert _within_mcse(log_s ** 2, 0.25)
+
+
+@pytest.mark.mcmc
+def test_numpyro_fit_is_extended_with_a_mass_matrix_from_its_draws():
+    # numpyro through PyMC keeps its adapted mass matrix; the fit keeps the unconstrained
+    # draws instead, the extension builds its matrix from them, and the extended draws
+    # sample the closed-form posterior (normal mean, known SD: conjugate normal)
+    import pymc as pm
+
+    from allolaw.model.mass_matrix import MASS_DENSE
+    from allolaw.model.sampling import _sample, fit_model
+
+    model = _model()
+    idata, _, _, state = _sample(model, "numpyro", chains=2, draws=40, warmup=200,
+                                 target_acceptance=0.9, seed=4, threads=1, progress=False,
+                                 keep_state=True)
+    assert state is not None
+    assert state.inverse_mass is None
+    assert state.value_vars == ("mu",)
+    np.testing.assert_allclose(state.step_size,
+                               idata.sample_stats["step_size"].values[:, -1])
+    # 2 x 150 draws fall short of the ESS threshold (400); the extension adds as many
+    fit = fit_model(model, chains=2, draws=150, warmup=200, seed=4, backend="numpyro",
+                    prior_draws=10, extension_draws=1000)
+    record = json.loads(fit.attrs["chain_extension"])
+    assert record["status"] == "extended", record
+    assert record["mass_matrix"] == MASS_DENSE
+    assert record["draws_per_chain_after"] == 300
+    added = fit.posterior[["mu"]].isel(draw=slice(150, None))
+    m, s = _closed_form()
+    assert abs(float(added["mu"].mean()) - m) < 4 * float(az.mcse(added)["mu"])
+    assert float(added["mu"].std()) == pytest.approx(s, rel=0.15)
+
+    # a transformed variable: its unconstrained draws are kept for the extension, then
+    # dropped with the sampler's other values
+    with pm.Model() as scaled:
+        sd = pm.HalfNormal("sd", 1.0)
+        pm.Normal("trait", 0.0, sd, observed=_Y)
+    idata, _, _, state = _sample(scaled, "numpyro", chains=2, draws=30, warmup=100,
+                                 target_acceptance=0.9, seed=4, threads=1, progress=False,
+                                 keep_state=True)
+    assert state.value_vars == ("sd_log__",)
+    assert "sd_log__" in idata.posterior
+    fit = fit_model(scaled, chains=2, draws=30, warmup=100, seed=4, backend="numpyro",
+                    prior_draws=10)
+    assert "sd_log__" not in fit.posterior
+    assert "sd" in fit.posterior

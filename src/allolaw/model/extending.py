@@ -45,7 +45,7 @@ if TYPE_CHECKING:
     import arviz as az
     import pymc as pm
 
-__all__ = ["ESS_MIN", "RHAT_MAX", "AdaptedState", "adapted_metric",
+__all__ = ["ESS_MIN", "RHAT_MAX", "AdaptedState", "adapted_metric", "adapted_state_from_draws",
            "adapted_state_from_nutpie", "convergence_numbers", "extend_chains",
            "extend_if_short"]
 
@@ -68,7 +68,9 @@ class AdaptedState:
     """The sampler state warm-up left in each chain (unconstrained space)."""
 
     value_vars: tuple[str, ...]  # the sampler's order of the unconstrained variables
-    inverse_mass: np.ndarray  # (chains, n): diagonal of the inverse mass matrix
+    # (chains, n): diagonal of the inverse mass matrix; None when the backend does not hand
+    # it back (numpyro through PyMC), so an extension takes one from the draws
+    inverse_mass: np.ndarray | None
     step_size: np.ndarray  # (chains,)
     low_rank_left_out: np.ndarray  # (chains,): low-rank directions the diagonal leaves out
 
@@ -101,6 +103,20 @@ def adapted_state_from_nutpie(idata: az.InferenceData, value_vars: list[str]
             ds = getattr(idata, group)
             setattr(idata, group, ds.drop_vars([n for n in _MASS_STATS if n in ds]))
     return state
+
+
+def adapted_state_from_draws(idata: az.InferenceData, value_vars: list[str]
+                             ) -> AdaptedState:
+    """The last step size of each chain, for a backend that hands back nothing else.
+
+    numpyro through PyMC keeps its adapted inverse mass matrix to itself; with the fit's
+    unconstrained draws kept (``keep_untransformed``), :func:`extend_if_short` builds the
+    extension's mass matrix from the draws (:func:`mass_matrix_from_draws`).
+    """
+    step = np.asarray(idata.sample_stats["step_size"].isel(draw=-1).values, dtype=float)
+    return AdaptedState(value_vars=tuple(value_vars), inverse_mass=None,
+                        step_size=np.ravel(step),
+                        low_rank_left_out=np.zeros(np.size(step), dtype=int))
 
 
 def adapted_metric(state: AdaptedState) -> ChainMetric:
@@ -217,10 +233,12 @@ def extend_if_short(
     metric = _choose_metric(idata, state)
     if metric is None:
         record["status"] = "not available"
-        record["reason"] += ("; nutpie's adapted mass matrix has a low-rank part in "
-                             f"{int(state.low_rank_left_out.max())} direction(s) that nutpie "
-                             "does not hand back, and the fit's unconstrained draws needed to "
-                             "replace it are not stored, so the chains were not extended")
+        why = ("its adapted mass matrix" if state.inverse_mass is None else
+               f"the low-rank part ({int(state.low_rank_left_out.max())} direction(s)) of "
+               "its adapted mass matrix")
+        record["reason"] += (f"; backend {backend} does not hand back {why}, and the fit's "
+                             "unconstrained draws needed to replace it are not stored, so "
+                             "the chains were not extended")
         record["low_rank_directions_left_out"] = [int(k) for k in state.low_rank_left_out]
         return idata, record
     chains = int(idata.posterior.sizes["chain"])
@@ -255,8 +273,9 @@ def extend_if_short(
 
 
 def _choose_metric(idata: Any, state: AdaptedState) -> ChainMetric | None:
-    # nutpie's diagonal when no chain used a low-rank part; else one from the draws
-    if not np.any(state.low_rank_left_out > 0):
+    # nutpie's diagonal when no chain used a low-rank part; else (or with no adapted
+    # matrix handed back) one from the draws
+    if state.inverse_mass is not None and not np.any(state.low_rank_left_out > 0):
         return adapted_metric(state)
     return mass_matrix_from_draws(idata.posterior, state.value_vars, state.step_size)
 

@@ -9,9 +9,11 @@ and prior predictive draws, and the observed and constant data. The ``fit`` stag
 Backends: ``pymc`` (PyMC's own NUTS, pytensor C code), ``numpyro`` (JAX), ``nutpie`` (Rust
 sampler with low-rank mass-matrix adaptation; log density compiled with JAX, which uses the
 persistent compile cache, or with numba when ``ALLOLAW_NUTPIE_BACKEND=numba``). ``auto`` is
-:data:`AUTO_BACKEND`, chosen from ``benchmarks/speed.py`` on the project machine. A backend
-that fails (missing library, compile error) falls back to ``pymc``; the failure is logged and
-kept in the attributes.
+numpyro for models with at most :data:`AUTO_NUMPYRO_MAX` unconstrained values (its whole NUTS
+loop is one XLA program, no Python call per gradient) and nutpie above (its low-rank mass
+matrix; measured only up to ``benchmarks/README.md``'s sizes, see "A compiled sampler loop").
+A backend that fails (missing library, compile error) falls back to ``pymc``; the failure is
+logged and kept in the attributes.
 """
 
 from __future__ import annotations
@@ -32,6 +34,7 @@ if TYPE_CHECKING:
     import arviz as az
     import pymc as pm
 from allolaw.model.compiling import (
+    NUMBA_FROM_TREE_SPECIES,
     NUTPIE_COMPILE,
     PREDICTIVE_COMPILE,
     apply_jax_cache,
@@ -41,17 +44,27 @@ from allolaw.model.compiling import (
     nutpie_compiler,
     per_draw_compile,
 )
-from allolaw.model.extending import AdaptedState, adapted_state_from_nutpie, extend_if_short
+from allolaw.model.extending import (
+    AdaptedState,
+    adapted_state_from_draws,
+    adapted_state_from_nutpie,
+    extend_if_short,
+)
 
-__all__ = ["AUTO_BACKEND", "BACKENDS", "fit_model", "resolve_backend"]
+__all__ = ["AUTO_NUMPYRO_MAX", "BACKENDS", "fit_model", "resolve_backend",
+           "unconstrained_size"]
 
 log = logging.getLogger(__name__)
 
 #: Backends :func:`fit_model` knows.
 BACKENDS = ("pymc", "numpyro", "nutpie")
 
-#: What ``backend="auto"`` means on this project's machine (see ``benchmarks/README.md``).
-AUTO_BACKEND = "nutpie"
+#: ``backend="auto"`` is numpyro up to this many unconstrained values, nutpie above. Our own
+#: choice from measurements on the project machine (benchmarks/README.md, "A compiled sampler
+#: loop"): numpyro's compiled loop was faster in wall time on every demo fit (at most 573
+#: values) and on reference problem B (725); nutpie-JAX's low-rank mass matrix was kept for
+#: C (3,000 species) and larger, where numpyro was not measured at full length.
+AUTO_NUMPYRO_MAX = 2000
 #: Deterministics with at least this many values per draw are recomputed after nutpie's run
 #: instead of stored by it (memory; :func:`_large_deterministics`). Engineering choice: the
 #: demo's per-species deterministics (172 values) stay stored, so small fits are unchanged.
@@ -134,18 +147,20 @@ def fit_model(
         raise ValueError(msg)
     wall_start = time.perf_counter()
     lighter_jax_rewrites()  # every JAX compile of the fit: sampling, log-likelihood, predictive
-    chosen = resolve_backend(backend)
+    from allolaw.model.phylo_terms import tree_species
+
+    n_values, species_in_tree = unconstrained_size(model), tree_species(model)
+    chosen = resolve_backend(backend, n_values, species_in_tree)
     seeds = np.random.SeedSequence(int(seed)).generate_state(3)
     progress = _show_progress()
     fallback = ""
     log.info(
-        "fit: backend %s, %d chains x (%d warm-up + %d draws), %d thread(s), seed %d",
-        chosen, chains, warmup, draws, threads, seed,
+        "fit: backend %s%s, %d unconstrained values, %d chains x (%d warm-up + %d draws), "
+        "%d thread(s), seed %d", chosen, " (auto)" if backend == "auto" else "", n_values,
+        chains, warmup, draws, threads, seed,
     )
     keep_state = extension_draws > 0
-    from allolaw.model.phylo_terms import tree_species
-
-    compiler = nutpie_compiler(tree_species(model))  # used when nutpie runs
+    compiler = nutpie_compiler(species_in_tree)  # used when nutpie runs
     cached_before = jax_cache_counts()
     try:
         idata, compile_s, sampling_s, state = _sample(
@@ -271,8 +286,13 @@ def _drop_sampler_values(idata: az.InferenceData, model: pm.Model) -> None:
         idata.posterior = idata.posterior.drop_vars(present)
 
 
-def resolve_backend(backend: str) -> str:
-    """Return the backend ``backend`` names (``"auto"`` → :data:`AUTO_BACKEND`).
+def resolve_backend(backend: str, n_values: int, tree_species: int = 0) -> str:
+    """Return the backend ``backend`` names for a model of ``n_values`` unconstrained values.
+
+    ``"auto"`` is numpyro up to :data:`AUTO_NUMPYRO_MAX` values, and nutpie above or when the
+    model's tree has ``tree_species`` ≥ :data:`~allolaw.model.compiling.NUMBA_FROM_TREE_SPECIES`
+    (nutpie then compiles with numba, whose tree density is the faster one there; numpyro
+    would run JAX's). A named backend is kept.
 
     Raises
     ------
@@ -280,11 +300,18 @@ def resolve_backend(backend: str) -> str:
         If ``backend`` is not ``auto`` or one of :data:`BACKENDS`.
     """
     if backend == "auto":
-        return AUTO_BACKEND
+        small = n_values <= AUTO_NUMPYRO_MAX and tree_species < NUMBA_FROM_TREE_SPECIES
+        return "numpyro" if small else "nutpie"
     if backend not in BACKENDS:
         msg = f"sampler.backend: unknown backend {backend!r}; use auto, {', '.join(BACKENDS)}"
         raise UserError(msg)
     return backend
+
+
+def unconstrained_size(model: pm.Model) -> int:
+    """Number of values the sampler moves: every free variable in its unconstrained space."""
+    shapes = model.eval_rv_shapes()
+    return int(sum(int(np.prod(shapes[v.name])) for v in model.value_vars))
 
 
 def _sample(
@@ -301,8 +328,8 @@ def _sample(
     keep_state: bool = False,
     compiler: str | None = None,
 ) -> tuple[az.InferenceData, float, float, AdaptedState | None]:
-    # Returns (idata, compile seconds, sampling seconds, adapted state: nutpie with
-    # keep_state only, else None). The sampling seconds are the backend's
+    # Returns (idata, compile seconds, sampling seconds, adapted state: with keep_state
+    # from nutpie or numpyro, else None). The sampling seconds are the backend's
     # own clock of its sampling loop; everything else inside pm.sample (graph rewriting, C or
     # numba compilation, initial points) counts as compile time. With numpyro the loop's JIT
     # compilation happens inside its clock, so there "sampling" includes XLA compilation unless
@@ -327,7 +354,10 @@ def _sample(
 
         parallel = threads >= chains and jax.local_device_count() >= chains
         kwargs["nuts_sampler"] = "numpyro"
-        kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential"}
+        kwargs["nuts_sampler_kwargs"] = {"chain_method": "parallel" if parallel else "sequential",
+                                         # the sampler's own transformed values (sd_log__ …),
+                                         # from which a chain extension builds its mass matrix
+                                         "keep_untransformed": keep_state}
     elif backend == "nutpie":
         compiler = compiler or NUTPIE_COMPILE["backend"]
         if compiler == "jax":
@@ -346,7 +376,11 @@ def _sample(
     total = time.perf_counter() - start
     sampling = float(idata.posterior.attrs.get("sampling_time", total))
     sampling = min(sampling, total)
-    return idata, total - sampling, sampling, None
+    state = None
+    if keep_state and backend == "numpyro":
+        state = adapted_state_from_draws(idata, [model.rvs_to_values[rv].name
+                                                 for rv in model.free_RVs])
+    return idata, total - sampling, sampling, state
 
 
 def _sample_nutpie(
