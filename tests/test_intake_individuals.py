@@ -96,7 +96,8 @@ def test_individuals_fit_with_species_as_innermost_level_and_a_within_exponent(t
     columns = {"species": "species", "size": "mass_g", "trait": "rate_w", "levels": ["genus"]}
     config = _config(tmp_path, path, columns)
     config["models_dir"] = str(Path(__file__).resolve().parents[1] / "models")
-    config["sampler"].update(chains=2, draws=100, warmup=100, prior_draws=20, seed=4)
+    config["sampler"].update(chains=2, draws=100, warmup=100, prior_draws=20, seed=4,
+                             extension_draws=0)  # shapes only: no chain extension
     config["datasets"]["d"]["models"] = ["individuals_within"]
     prepare_dataset(config, "d")
     idata = fit_dataset_model(config, "d", "individuals_within")

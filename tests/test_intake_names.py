@@ -86,7 +86,8 @@ def test_level_called_species_fits_with_the_level_as_a_posterior_dimension(tmp_p
 
     header = ["id", "family", "genus", "species", "mass", "rate"]
     columns = {"species": "id", "size": "mass", "trait": "rate", "levels": ["genus", "species"]}
-    sampler = {"chains": 2, "draws": 100, "warmup": 100, "seed": 5, "prior_draws": 20}
+    sampler = {"chains": 2, "draws": 100, "warmup": 100, "seed": 5, "prior_draws": 20,
+               "extension_draws": 0}  # shapes only: no chain extension
     config = _config(tmp_path, header, columns, sampler=sampler)
     prepare_dataset(config, "d")
     idata = fit_dataset_model(config, "d", "taxa")
