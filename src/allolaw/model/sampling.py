@@ -61,9 +61,12 @@ BACKENDS = ("pymc", "numpyro", "nutpie")
 
 #: ``backend="auto"`` is numpyro up to this many unconstrained values, nutpie above. Our own
 #: choice from measurements on the project machine (benchmarks/README.md, "A compiled sampler
-#: loop"): numpyro's compiled loop was faster in wall time on every demo fit (at most 573
-#: values) and on reference problem B (725); nutpie-JAX's low-rank mass matrix was kept for
-#: C (3,000 species) and larger, where numpyro was not measured at full length.
+#: loop"): with numpyro's compiled loop the demo batch (fits of at most 573 values) took
+#: 8:14 against nutpie's 11:49, 15 of 16 fits faster, none refitted or extended, and min
+#: bulk ESS per wall second was higher on every fit with size errors or a tree (lower on three
+#: small fits, all far above the ESS threshold); on reference problem B (670 values) 1.26x
+#: nutpie's ESS per wall second. nutpie-JAX (low-rank mass matrix) is kept for C (3,189
+#: values) and larger, where numpyro was not measured at full length.
 AUTO_NUMPYRO_MAX = 2000
 #: Deterministics with at least this many values per draw are recomputed after nutpie's run
 #: instead of stored by it (memory; :func:`_large_deterministics`). Engineering choice: the
