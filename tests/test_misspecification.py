@@ -9,6 +9,7 @@ import json
 import os
 import subprocess
 import sys
+from itertools import pairwise
 from pathlib import Path
 
 import numpy as np
@@ -232,10 +233,13 @@ def test_study_records_every_fit_with_truth_and_consistent_scores(tmp_path):
 
 
 def _nearest_named(value: float) -> tuple[str, float]:
-    # the named exponent nearest ``value`` and the distance from ``value`` to the nearest
-    # midpoint between two named exponents (how clearly ``value`` picks that one)
-    named = {"2/3": 2 / 3, "3/4": 0.75, "1": 1.0}
-    mids = (0.5 * (2 / 3 + 0.75), 0.5 * (0.75 + 1.0))
+    # the named exponent nearest ``value`` (of the study's NAMED_EXPONENTS) and the distance
+    # from ``value`` to the nearest midpoint between two of them (how clearly it picks one)
+    from allolaw.testing.misspecified_study import NAMED_EXPONENTS
+
+    named = {h["name"]: h["value"] for h in NAMED_EXPONENTS["exponents"]}
+    values = sorted(named.values())
+    mids = [0.5 * (a + b) for a, b in pairwise(values)]
     name = min(named, key=lambda k: abs(named[k] - value))
     return name, min(abs(value - m) for m in mids)
 
